@@ -1,0 +1,234 @@
+//! The command line: argument parsing and the commands that are not a long-running
+//! service. Exit codes: 0 success, 2 invalid config or arguments, 1 runtime failure.
+
+use std::io::IsTerminal;
+use std::path::{Path, PathBuf};
+use std::process::ExitCode;
+use std::time::{Duration, Instant};
+
+use clap::{Parser, Subcommand};
+
+use crate::config::{self, FileProblems};
+use crate::rehearse::{self, Options, Rehearsal};
+use crate::sim;
+
+#[derive(Debug, Parser)]
+#[command(
+    name = "ridgeline",
+    version,
+    about = "Extremum-seeking supervisory optimizer that runs beside a PLC"
+)]
+pub struct Cli {
+    #[command(subcommand)]
+    pub command: Command,
+}
+
+#[derive(Debug, Subcommand)]
+pub enum Command {
+    /// Validate a config file: print every problem, or a summary of each loop.
+    Check {
+        #[arg(long, value_name = "FILE")]
+        config: PathBuf,
+    },
+    /// Run the configured loops offline against a plant model and report how they did.
+    Rehearse {
+        #[arg(long, value_name = "FILE")]
+        config: PathBuf,
+        #[arg(long, value_name = "FILE")]
+        plant: PathBuf,
+        /// Simulated time, like 90s, 45m, 6h or 2d.
+        #[arg(long, default_value = "6h", value_parser = parse_duration_s)]
+        duration: f64,
+        /// Write an SVG picture of the run.
+        #[arg(long, value_name = "OUT.svg")]
+        plot: Option<PathBuf>,
+        /// Write DIR/<loop>.csv with every tick.
+        #[arg(long, value_name = "DIR")]
+        csv: Option<PathBuf>,
+        /// Print the report as JSON.
+        #[arg(long)]
+        json: bool,
+    },
+}
+
+/// Exit status for an invalid config or arguments.
+const INVALID: u8 = 2;
+/// Exit status for a failure while running.
+const FAILED: u8 = 1;
+
+pub fn run(cli: Cli) -> ExitCode {
+    match cli.command {
+        Command::Check { config } => check(&config),
+        Command::Rehearse { config, plant, duration, plot, csv, json } => rehearse(
+            &config,
+            &plant,
+            Options { duration_s: duration, csv_dir: csv, keep_traces: plot.is_some() },
+            plot.as_deref(),
+            json,
+        ),
+    }
+}
+
+fn report_problems(problems: &FileProblems) -> ExitCode {
+    eprintln!("{problems}");
+    let n = problems.problems.len();
+    eprintln!("{}: {n} problem{}", problems.file, if n == 1 { "" } else { "s" });
+    ExitCode::from(INVALID)
+}
+
+fn check(path: &Path) -> ExitCode {
+    match config::load(path) {
+        Ok(config) => {
+            let n = config.loops.len();
+            println!("{}: valid, {n} loop{}", path.display(), if n == 1 { "" } else { "s" });
+            for summary in config::summary::summarize(&config) {
+                print!("{summary}");
+            }
+            ExitCode::SUCCESS
+        }
+        Err(problems) => report_problems(&problems),
+    }
+}
+
+fn rehearse(
+    config_path: &Path,
+    plant_path: &Path,
+    options: Options,
+    plot: Option<&Path>,
+    json: bool,
+) -> ExitCode {
+    let config = config::load(config_path);
+    let plant = sim::load(plant_path);
+    let (config, plant) = match (config, plant) {
+        (Ok(c), Ok(p)) => (c, p),
+        (c, p) => {
+            for problems in [c.err(), p.err()].into_iter().flatten() {
+                report_problems(&problems);
+            }
+            return ExitCode::from(INVALID);
+        }
+    };
+    let rehearsal = match Rehearsal::new(&config, &plant, &config_path.display().to_string()) {
+        Ok(r) => r,
+        Err(problems) => {
+            eprintln!("the config does not fit the plant model {}:", plant_path.display());
+            return report_problems(&problems);
+        }
+    };
+    let mut progress = Progress::new();
+    let outcome = rehearsal.run(&options, &mut |done| progress.update(done));
+    progress.finish();
+    let outcome = match outcome {
+        Ok(o) => o,
+        Err(e) => {
+            eprintln!("rehearsal failed: {e:#}");
+            return ExitCode::from(FAILED);
+        }
+    };
+    if json {
+        match serde_json::to_string_pretty(&outcome.report) {
+            Ok(text) => println!("{text}"),
+            Err(e) => {
+                eprintln!("could not write the report as JSON: {e}");
+                return ExitCode::from(FAILED);
+            }
+        }
+    } else {
+        println!(
+            "rehearsal of {} against {}",
+            rehearse::human_duration(options.duration_s),
+            plant_path.display()
+        );
+        println!();
+        print!("{}", outcome.report);
+    }
+    if let Some(path) = plot {
+        if let Err(e) = rehearse::plot::write_svg(path, &outcome.traces) {
+            eprintln!("{e:#}");
+            return ExitCode::from(FAILED);
+        }
+        if !json {
+            println!("plot written to {}", path.display());
+        }
+    }
+    ExitCode::SUCCESS
+}
+
+/// A progress bar on stderr, shown only for runs that last more than a second and only
+/// when stderr is a terminal.
+struct Progress {
+    started: Instant,
+    bar: Option<indicatif::ProgressBar>,
+    interactive: bool,
+}
+
+impl Progress {
+    fn new() -> Self {
+        Progress { started: Instant::now(), bar: None, interactive: std::io::stderr().is_terminal() }
+    }
+
+    fn update(&mut self, done: f64) {
+        if !self.interactive {
+            return;
+        }
+        if self.bar.is_none() && self.started.elapsed() > Duration::from_secs(1) {
+            let bar = indicatif::ProgressBar::new(1000);
+            if let Ok(style) =
+                indicatif::ProgressStyle::with_template("rehearsing {bar:40} {percent:>3}% eta {eta}")
+            {
+                bar.set_style(style);
+            }
+            self.bar = Some(bar);
+        }
+        if let Some(bar) = &self.bar {
+            bar.set_position((done * 1000.0) as u64);
+        }
+    }
+
+    fn finish(&mut self) {
+        if let Some(bar) = self.bar.take() {
+            bar.finish_and_clear();
+        }
+    }
+}
+
+/// Parses `90s`, `45m`, `6h`, `2d` (decimals allowed) into seconds.
+pub fn parse_duration_s(text: &str) -> Result<f64, String> {
+    let text = text.trim();
+    let split = text.find(|c: char| c.is_ascii_alphabetic()).unwrap_or(text.len());
+    let (number, unit) = text.split_at(split);
+    let scale = match unit {
+        "s" => 1.0,
+        "m" => 60.0,
+        "h" => 3600.0,
+        "d" => 86_400.0,
+        "" => return Err(format!("`{text}` needs a unit: s, m, h or d (like 90s, 45m, 6h, 2d)")),
+        other => return Err(format!("unknown unit `{other}`: use s, m, h or d (like 90s, 45m, 6h, 2d)")),
+    };
+    match number.parse::<f64>() {
+        Ok(v) if v.is_finite() && v > 0.0 && v * scale <= 3.2e9 => Ok(v * scale),
+        Ok(_) => Err(format!("`{text}` must be a positive duration of at most 100 years")),
+        Err(_) => Err(format!("`{number}` is not a number (like 90s, 45m, 6h, 2d)")),
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn durations_take_seconds_minutes_hours_and_days() {
+        assert_eq!(parse_duration_s("90s"), Ok(90.0));
+        assert_eq!(parse_duration_s("45m"), Ok(2700.0));
+        assert_eq!(parse_duration_s("6h"), Ok(21_600.0));
+        assert_eq!(parse_duration_s("2d"), Ok(172_800.0));
+        assert_eq!(parse_duration_s("1.5h"), Ok(5400.0));
+    }
+
+    #[test]
+    fn durations_without_a_known_unit_or_positive_number_are_refused() {
+        for bad in ["90", "5w", "h", "-1h", "0s", "nans", "1e300d"] {
+            assert!(parse_duration_s(bad).is_err(), "{bad}");
+        }
+    }
+}

@@ -1,0 +1,565 @@
+//! The service config: typed structs, reading from TOML and validation.
+//!
+//! [`load`] and [`parse`] return either a whole [`Config`] or every problem found,
+//! each with its key path and line (see [`read`] for how, [`validate`] for the rules).
+
+pub mod read;
+pub mod summary;
+mod validate;
+
+pub(crate) use validate::is_identifier;
+
+use std::net::SocketAddr;
+use std::path::{Path, PathBuf};
+
+use crate::expr::Expr;
+pub use read::{FileProblems, Problem};
+use read::{FromToml, Mismatch, Problems, Table, string_enum};
+
+/// A validated service config.
+#[derive(Debug, Clone)]
+pub struct Config {
+    pub service: Service,
+    pub access: Vec<Access>,
+    pub links: Vec<Link>,
+    pub tags: Vec<Tag>,
+    pub loops: Vec<LoopConfig>,
+}
+
+#[derive(Debug, Clone)]
+pub struct Service {
+    pub listen: SocketAddr,
+    pub database: PathBuf,
+    pub retention_days: u32,
+    pub open_reads: bool,
+    pub log_format: LogFormat,
+}
+
+string_enum! {
+    pub enum LogFormat { Text = "text", Json = "json" }
+}
+
+#[derive(Clone)]
+pub struct Access {
+    pub name: String,
+    /// Lower-case hex SHA-256 of the token; never logged.
+    pub token_sha256: String,
+    pub role: Role,
+}
+
+impl std::fmt::Debug for Access {
+    fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
+        f.debug_struct("Access").field("name", &self.name).field("role", &self.role).finish_non_exhaustive()
+    }
+}
+
+string_enum! {
+    pub enum Role { Viewer = "viewer", Operator = "operator" }
+}
+
+#[derive(Debug, Clone)]
+pub struct Link {
+    pub name: String,
+    pub kind: LinkKind,
+    pub timeout_ms: u64,
+}
+
+#[derive(Debug, Clone, PartialEq)]
+pub enum LinkKind {
+    /// `host:port` of a Modbus/TCP server, and the unit identifier to address.
+    ModbusTcp { address: String, unit: u8 },
+    /// URL of a JSON document fetched once per tick.
+    HttpGet { url: String },
+}
+
+#[derive(Debug, Clone)]
+pub struct Tag {
+    pub name: String,
+    pub link: String,
+    pub source: TagSource,
+}
+
+#[derive(Debug, Clone, PartialEq)]
+pub enum TagSource {
+    Register { space: RegisterSpace, address: u16, codec: Codec },
+    JsonPointer(String),
+}
+
+string_enum! {
+    /// Which Modbus register table a value lives in.
+    pub enum RegisterSpace { Input = "input_register", Holding = "holding_register" }
+}
+
+/// How an engineering value is encoded in registers.
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub struct Codec {
+    pub kind: RegisterType,
+    pub word_order: WordOrder,
+    pub scale: f64,
+    pub offset: f64,
+}
+
+string_enum! {
+    pub enum RegisterType { U16 = "u16", I16 = "i16", U32 = "u32", I32 = "i32", F32 = "f32" }
+}
+
+impl RegisterType {
+    /// How many 16-bit registers one value takes.
+    pub fn width(self) -> u16 {
+        match self {
+            RegisterType::U16 | RegisterType::I16 => 1,
+            RegisterType::U32 | RegisterType::I32 | RegisterType::F32 => 2,
+        }
+    }
+}
+
+string_enum! {
+    /// Word order of 32-bit values: `big` puts the high word in the lower register.
+    pub enum WordOrder { Big = "big", Little = "little" }
+}
+
+string_enum! {
+    pub enum Direction { Maximize = "maximize", Minimize = "minimize" }
+}
+
+string_enum! {
+    pub enum MethodKind { Sine = "sine", Newton = "newton", Stepwise = "stepwise" }
+}
+
+string_enum! {
+    /// What an operator asks a loop to do.
+    pub enum Mode { Seeking = "seeking", Holding = "holding", Observing = "observing", Stopped = "stopped" }
+}
+
+string_enum! {
+    pub enum OnShutdown { Hold = "hold", Safe = "safe" }
+}
+
+string_enum! {
+    pub enum OnTrip { Safe = "safe", Hold = "hold" }
+}
+
+string_enum! {
+    pub enum Recover { Manual = "manual", Auto = "auto" }
+}
+
+/// A closed range `[min, max]` of an input, in engineering units.
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub struct Range {
+    pub min: f64,
+    pub max: f64,
+}
+
+impl Range {
+    pub fn contains(&self, v: f64) -> bool {
+        self.min <= v && v <= self.max
+    }
+    pub fn span(&self) -> f64 {
+        self.max - self.min
+    }
+}
+
+impl std::fmt::Display for Range {
+    fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
+        write!(f, "[{}, {}]", self.min, self.max)
+    }
+}
+
+impl FromToml for Range {
+    const EXPECTED: &'static str = "a pair [min, max]";
+    fn from_toml(
+        value: &toml::de::DeValue<'_>,
+        path: &str,
+        problems: &Problems<'_>,
+    ) -> Result<Self, Mismatch> {
+        let [min, max] = <[f64; 2]>::from_toml(value, path, problems)?;
+        Ok(Range { min, max })
+    }
+}
+
+#[derive(Debug, Clone)]
+pub struct LoopConfig {
+    pub name: String,
+    pub objective: Expr,
+    pub direction: Direction,
+    pub method: MethodKind,
+    pub tick_s: f64,
+    pub start_mode: Mode,
+    pub permit: Option<String>,
+    pub on_shutdown: OnShutdown,
+    pub curvature_hint: Option<f64>,
+    pub filter: Filter,
+    pub watchdog: Watchdog,
+    pub heartbeat: Option<Heartbeat>,
+    pub inputs: Vec<InputConfig>,
+}
+
+#[derive(Debug, Clone, Copy)]
+pub struct Filter {
+    pub highpass_hz: f64,
+    pub lowpass_hz: Option<f64>,
+    pub phase_deg: f64,
+}
+
+#[derive(Debug, Clone, Copy)]
+pub struct Watchdog {
+    pub stale_after_s: f64,
+    pub objective_range: Option<Range>,
+    pub on_trip: OnTrip,
+    pub recover: Recover,
+    pub recover_after_s: Option<f64>,
+}
+
+#[derive(Debug, Clone)]
+pub struct Heartbeat {
+    pub link: String,
+    pub holding_register: u16,
+}
+
+#[derive(Debug, Clone)]
+pub struct InputConfig {
+    pub name: String,
+    pub write: WriteTarget,
+    pub limits: Range,
+    pub bounds: Range,
+    pub safe: f64,
+    pub max_rate_per_s: f64,
+    pub dither_amplitude: f64,
+    pub dither_period_s: f64,
+    pub gain: f64,
+}
+
+impl InputConfig {
+    pub fn dither_hz(&self) -> f64 {
+        1.0 / self.dither_period_s
+    }
+}
+
+/// The holding register a setpoint is written to.
+#[derive(Debug, Clone)]
+pub struct WriteTarget {
+    pub link: String,
+    pub holding_register: u16,
+    pub codec: Codec,
+}
+
+impl Config {
+    pub fn link(&self, name: &str) -> Option<&Link> {
+        self.links.iter().find(|l| l.name == name)
+    }
+    pub fn tag(&self, name: &str) -> Option<&Tag> {
+        self.tags.iter().find(|t| t.name == name)
+    }
+}
+
+/// Reads and validates a config file.
+pub fn load(path: &Path) -> Result<Config, FileProblems> {
+    let file = path.display().to_string();
+    match std::fs::read_to_string(path) {
+        Ok(text) => parse(&text, &file),
+        Err(e) => Err(FileProblems {
+            file,
+            problems: vec![Problem {
+                path: String::new(),
+                line: None,
+                message: format!("cannot read the file: {e}"),
+            }],
+        }),
+    }
+}
+
+/// Parses and validates config text; `file` names it in problems.
+pub fn parse(text: &str, file: &str) -> Result<Config, FileProblems> {
+    let problems = Problems::new(text);
+    let config = read::parse_document(text, &problems).and_then(|doc| {
+        let root = Table::root(&doc, &problems, &["service", "access", "links", "tags", "loops"]);
+        read_config(&root)
+    });
+    if let Some(config) = &config {
+        validate::validate(config, &problems);
+    }
+    problems.into_result(file, config)
+}
+
+fn read_config(t: &Table) -> Option<Config> {
+    let service =
+        match t.table("service", &["listen", "database", "retention_days", "open_reads", "log_format"]) {
+            Some(s) => read_service(&s),
+            None if t.has("service") => None,
+            None => Some(Service::default()),
+        };
+    let access: Vec<_> =
+        t.tables("access", &["name", "token_sha256", "role"]).iter().map(read_access).collect();
+    let links: Vec<_> = t
+        .named_tables("links", &["modbus_tcp", "unit", "http_get", "timeout_ms"])
+        .iter()
+        .map(|(name, l)| read_link(name, l))
+        .collect();
+    let tags: Vec<_> = t
+        .named_tables(
+            "tags",
+            &[
+                "link",
+                "input_register",
+                "holding_register",
+                "type",
+                "word_order",
+                "scale",
+                "offset",
+                "json_pointer",
+            ],
+        )
+        .iter()
+        .map(|(name, tag)| read_tag(name, tag))
+        .collect();
+    let loops = t.tables("loops", LOOP_KEYS);
+    if loops.is_empty() && !t.has("loops") {
+        t.problem("no [[loops]]: a config needs at least one loop");
+    }
+    let loops: Vec<_> = loops.iter().map(read_loop).collect();
+    Some(Config {
+        service: service?,
+        access: access.into_iter().collect::<Option<_>>()?,
+        links: links.into_iter().collect::<Option<_>>()?,
+        tags: tags.into_iter().collect::<Option<_>>()?,
+        loops: loops.into_iter().collect::<Option<_>>()?,
+    })
+}
+
+impl Default for Service {
+    fn default() -> Self {
+        Service {
+            listen: SocketAddr::from(([127, 0, 0, 1], 8080)),
+            database: PathBuf::from("/var/lib/ridgeline/history.db"),
+            retention_days: 90,
+            open_reads: true,
+            log_format: LogFormat::Text,
+        }
+    }
+}
+
+fn read_service(t: &Table) -> Option<Service> {
+    let d = Service::default();
+    let listen = t.opt::<String>("listen").map_or(Some(d.listen), |s| match s.parse() {
+        Ok(addr) => Some(addr),
+        Err(_) => {
+            t.problem_at("listen", format!("`{s}` is not an address like 127.0.0.1:8080"));
+            None
+        }
+    });
+    let database = t.opt::<String>("database").map_or(Some(d.database), |s| {
+        if s.is_empty() {
+            t.problem_at("database", "the database path is empty");
+        }
+        Some(PathBuf::from(s))
+    });
+    Some(Service {
+        listen: listen?,
+        database: database?,
+        retention_days: t.or("retention_days", d.retention_days)?,
+        open_reads: t.or("open_reads", d.open_reads)?,
+        log_format: t.or("log_format", d.log_format)?,
+    })
+}
+
+fn read_access(t: &Table) -> Option<Access> {
+    let hash: Option<String> = t.req("token_sha256");
+    let hash = hash.and_then(|h| {
+        if h.len() == 64 && h.bytes().all(|b| b.is_ascii_hexdigit()) {
+            Some(h.to_ascii_lowercase())
+        } else {
+            // Never echo the value: it may be a pasted token rather than its hash.
+            t.problem_at("token_sha256", "must be 64 hexadecimal characters (the SHA-256 of the token, as `ridgeline token` prints it)");
+            None
+        }
+    });
+    Some(Access { name: t.req("name")?, token_sha256: hash?, role: t.req("role")? })
+}
+
+fn read_link(name: &str, t: &Table) -> Option<Link> {
+    let modbus: Option<String> = t.opt("modbus_tcp");
+    let http: Option<String> = t.opt("http_get");
+    let unit = t.or("unit", 1u8);
+    let timeout_ms = t.or("timeout_ms", 1000u64);
+    let kind = match (modbus, http, t.has("modbus_tcp"), t.has("http_get")) {
+        (Some(address), None, _, false) => Some(LinkKind::ModbusTcp { address, unit: unit? }),
+        (None, Some(url), false, _) => {
+            if t.has("unit") {
+                t.problem_at("unit", "`unit` belongs to Modbus links, not HTTP ones");
+            }
+            Some(LinkKind::HttpGet { url })
+        }
+        (_, _, true, true) => {
+            t.problem("a link is either `modbus_tcp` or `http_get`, not both");
+            None
+        }
+        (None, None, false, false) => {
+            t.problem("a link needs `modbus_tcp = \"host:port\"` or `http_get = \"http://...\"`");
+            None
+        }
+        _ => None,
+    };
+    Some(Link { name: name.to_owned(), kind: kind?, timeout_ms: timeout_ms? })
+}
+
+fn read_codec(t: &Table) -> Option<Codec> {
+    Some(Codec {
+        kind: t.req("type")?,
+        word_order: t.or("word_order", WordOrder::Big)?,
+        scale: t.or("scale", 1.0)?,
+        offset: t.or("offset", 0.0)?,
+    })
+}
+
+fn read_tag(name: &str, t: &Table) -> Option<Tag> {
+    let link: Option<String> = t.req("link");
+    let input: Option<u16> = t.opt("input_register");
+    let holding: Option<u16> = t.opt("holding_register");
+    let pointer: Option<String> = t.opt("json_pointer");
+    let present = ["input_register", "holding_register", "json_pointer"].map(|k| t.has(k));
+    let source = match present {
+        [true, false, false] => {
+            Some(TagSource::Register { space: RegisterSpace::Input, address: input?, codec: read_codec(t)? })
+        }
+        [false, true, false] => Some(TagSource::Register {
+            space: RegisterSpace::Holding,
+            address: holding?,
+            codec: read_codec(t)?,
+        }),
+        [false, false, true] => {
+            for key in ["type", "word_order", "scale", "offset"] {
+                if t.has(key) {
+                    t.problem_at(
+                        key,
+                        format!("`{key}` describes registers; a JSON value is read as a number as it is"),
+                    );
+                }
+            }
+            Some(TagSource::JsonPointer(pointer?))
+        }
+        [false, false, false] => {
+            t.problem("a tag needs one of `input_register`, `holding_register` or `json_pointer`");
+            None
+        }
+        _ => {
+            t.problem("a tag has exactly one of `input_register`, `holding_register` or `json_pointer`");
+            None
+        }
+    };
+    Some(Tag { name: name.to_owned(), link: link?, source: source? })
+}
+
+const LOOP_KEYS: &[&str] = &[
+    "name",
+    "objective",
+    "direction",
+    "method",
+    "tick_s",
+    "start_mode",
+    "permit",
+    "on_shutdown",
+    "curvature_hint",
+    "filter",
+    "watchdog",
+    "heartbeat",
+    "inputs",
+];
+
+fn read_loop(t: &Table) -> Option<LoopConfig> {
+    let objective: Option<String> = t.req("objective");
+    let objective = objective.and_then(|src| match Expr::parse(&src) {
+        Ok(e) => Some(e),
+        Err(e) => {
+            t.problem_at("objective", format!("`{src}`: {e}"));
+            None
+        }
+    });
+    let filter = t.table("filter", &["highpass_hz", "lowpass_hz", "phase_deg"]).map(|f| {
+        Some(Filter {
+            highpass_hz: f.req("highpass_hz")?,
+            lowpass_hz: f.opt("lowpass_hz"),
+            phase_deg: f.or("phase_deg", 0.0)?,
+        })
+    });
+    if !t.has("filter") {
+        t.problem("missing table [loops.filter] (at least `highpass_hz`)");
+    }
+    let watchdog = t
+        .table("watchdog", &["stale_after_s", "objective_range", "on_trip", "recover", "recover_after_s"])
+        .map(|w| {
+            Some(Watchdog {
+                stale_after_s: w.req("stale_after_s")?,
+                objective_range: w.opt("objective_range"),
+                on_trip: w.or("on_trip", OnTrip::Safe)?,
+                recover: w.or("recover", Recover::Manual)?,
+                recover_after_s: w.opt("recover_after_s"),
+            })
+        });
+    if !t.has("watchdog") {
+        t.problem("missing table [loops.watchdog] (at least `stale_after_s`)");
+    }
+    let heartbeat = t
+        .table("heartbeat", &["link", "holding_register"])
+        .map(|h| Some(Heartbeat { link: h.req("link")?, holding_register: h.req("holding_register")? }));
+    // An optional value that is present but unreadable is already a recorded problem, so
+    // reading it as absent cannot let a bad config through.
+    let inputs = t.tables("inputs", INPUT_KEYS);
+    if inputs.is_empty() && !t.has("inputs") {
+        t.problem("a loop needs at least one [[loops.inputs]]");
+    }
+    let inputs: Vec<_> = inputs.iter().map(read_input).collect();
+    Some(LoopConfig {
+        name: t.req("name")?,
+        objective: objective?,
+        direction: t.req("direction")?,
+        method: t.or("method", MethodKind::Sine)?,
+        tick_s: t.req("tick_s")?,
+        start_mode: t.or("start_mode", Mode::Observing)?,
+        permit: t.opt("permit"),
+        on_shutdown: t.or("on_shutdown", OnShutdown::Hold)?,
+        curvature_hint: t.opt("curvature_hint"),
+        filter: filter??,
+        watchdog: watchdog??,
+        heartbeat: heartbeat.flatten(),
+        inputs: inputs.into_iter().collect::<Option<_>>()?,
+    })
+}
+
+const INPUT_KEYS: &[&str] = &[
+    "name",
+    "write",
+    "limits",
+    "bounds",
+    "safe",
+    "max_rate_per_s",
+    "dither_amplitude",
+    "dither_period_s",
+    "gain",
+];
+
+fn read_input(t: &Table) -> Option<InputConfig> {
+    let write =
+        t.table("write", &["link", "holding_register", "type", "word_order", "scale", "offset"]).map(|w| {
+            Some(WriteTarget {
+                link: w.req("link")?,
+                holding_register: w.req("holding_register")?,
+                codec: read_codec(&w)?,
+            })
+        });
+    if !t.has("write") {
+        t.problem(
+            "missing key `write` (a table like { link = \"plc\", holding_register = 200, type = \"f32\" })",
+        );
+    }
+    Some(InputConfig {
+        name: t.req("name")?,
+        write: write??,
+        limits: t.req("limits")?,
+        bounds: t.req("bounds")?,
+        safe: t.req("safe")?,
+        max_rate_per_s: t.req("max_rate_per_s")?,
+        dither_amplitude: t.req("dither_amplitude")?,
+        dither_period_s: t.req("dither_period_s")?,
+        gain: t.req("gain")?,
+    })
+}

@@ -1,0 +1,458 @@
+//! The semantic rules of a config that reads well as TOML: cross-references, ranges,
+//! and whether each loop's dither can work at all. Every rule reports by key path.
+
+use std::collections::{HashMap, HashSet};
+
+use super::read::Problems;
+use super::{Codec, Config, InputConfig, LinkKind, LoopConfig, MethodKind, Recover, RegisterType, TagSource};
+
+pub(super) fn validate(config: &Config, p: &Problems) {
+    if config.service.retention_days == 0 {
+        p.at("service.retention_days", "must be at least 1 day");
+    }
+    let mut access_names = HashSet::new();
+    for (i, a) in config.access.iter().enumerate() {
+        if a.name.trim().is_empty() {
+            p.at(&format!("access[{i}].name"), "must not be empty: it names who made each change");
+        } else if !access_names.insert(a.name.as_str()) {
+            p.at(&format!("access[{i}].name"), format!("`{}` is used by another [[access]] entry", a.name));
+        }
+    }
+    for link in &config.links {
+        validate_link(link, p);
+    }
+    for tag in &config.tags {
+        validate_tag(config, tag, p);
+    }
+    let mut loop_names = HashSet::new();
+    for (i, l) in config.loops.iter().enumerate() {
+        let path = format!("loops[{i}]");
+        if !loop_names.insert(l.name.as_str()) {
+            p.at(&format!("{path}.name"), format!("`{}` is the name of another loop", l.name));
+        }
+        validate_loop(config, l, &path, p);
+    }
+    check_write_collisions(config, p);
+}
+
+/// `[a-z][a-z0-9_]*`: names that expressions and CSV headers can use as they are.
+pub(crate) fn is_identifier(name: &str) -> bool {
+    let mut chars = name.chars();
+    chars.next().is_some_and(|c| c.is_ascii_lowercase())
+        && chars.all(|c| c.is_ascii_lowercase() || c.is_ascii_digit() || c == '_')
+}
+
+fn is_loop_name(name: &str) -> bool {
+    !name.is_empty() && name.chars().all(|c| c.is_ascii_lowercase() || c.is_ascii_digit() || c == '-')
+}
+
+fn validate_link(link: &super::Link, p: &Problems) {
+    let path = format!("links.{}", link.name);
+    if !is_loop_name(&link.name.replace('_', "-")) {
+        p.at(&path, format!("link name `{}` may only use a-z, 0-9, `-` and `_`", link.name));
+    }
+    if link.timeout_ms == 0 {
+        p.at(&format!("{path}.timeout_ms"), "must be at least 1 ms");
+    }
+    match &link.kind {
+        LinkKind::ModbusTcp { address, .. } => {
+            let ok = address
+                .rsplit_once(':')
+                .is_some_and(|(host, port)| !host.is_empty() && port.parse::<u16>().is_ok_and(|p| p > 0));
+            if !ok {
+                p.at(&format!("{path}.modbus_tcp"), format!("`{address}` is not a `host:port` address"));
+            }
+        }
+        LinkKind::HttpGet { url } => {
+            let rest = url.strip_prefix("http://").or_else(|| url.strip_prefix("https://"));
+            if rest.is_none_or(|r| r.is_empty() || r.starts_with('/')) {
+                p.at(&format!("{path}.http_get"), format!("`{url}` is not an http:// or https:// URL"));
+            }
+        }
+    }
+}
+
+fn validate_tag(config: &Config, tag: &super::Tag, p: &Problems) {
+    let path = format!("tags.{}", tag.name);
+    if !is_identifier(&tag.name) {
+        p.at(
+            &path,
+            format!("tag name `{}` must match [a-z][a-z0-9_]* to be usable in expressions", tag.name),
+        );
+    } else if crate::expr::Expr::parse(&tag.name).is_err() {
+        p.at(&path, format!("`{}` is a function name in expressions; pick another tag name", tag.name));
+    }
+    let link = config.link(&tag.link);
+    match (&tag.source, link.map(|l| &l.kind)) {
+        (_, None) => p.at(&format!("{path}.link"), format!("there is no link `{}` in [links]", tag.link)),
+        (TagSource::Register { address, codec, .. }, Some(LinkKind::ModbusTcp { .. })) => {
+            check_register_fits(*address, codec.kind, &path, p);
+            check_codec(codec, &path, p);
+        }
+        (TagSource::JsonPointer(pointer), Some(LinkKind::HttpGet { .. })) => {
+            if let Err(why) = check_json_pointer(pointer) {
+                p.at(&format!("{path}.json_pointer"), why);
+            }
+        }
+        (TagSource::Register { .. }, Some(_)) => p.at(
+            &format!("{path}.link"),
+            format!("`{}` is an HTTP link; registers need a Modbus link", tag.link),
+        ),
+        (TagSource::JsonPointer(_), Some(_)) => p.at(
+            &format!("{path}.link"),
+            format!("`{}` is a Modbus link; a json_pointer needs an HTTP link", tag.link),
+        ),
+    }
+}
+
+fn check_register_fits(address: u16, kind: RegisterType, path: &str, p: &Problems) {
+    if u32::from(address) + u32::from(kind.width()) > 65536 {
+        p.at(path, format!("a {kind} at register {address} runs past the last register 65535"));
+    }
+}
+
+fn check_codec(codec: &Codec, path: &str, p: &Problems) {
+    if codec.scale == 0.0 {
+        p.at(&format!("{path}.scale"), "must not be zero");
+    }
+}
+
+/// RFC 6901: empty, or `/`-separated tokens where `~` is only followed by 0 or 1.
+fn check_json_pointer(pointer: &str) -> Result<(), String> {
+    if !pointer.is_empty() && !pointer.starts_with('/') {
+        return Err(format!(
+            "`{pointer}` is not a JSON Pointer: it must be empty or start with `/` (RFC 6901)"
+        ));
+    }
+    let bytes = pointer.as_bytes();
+    for (i, b) in bytes.iter().enumerate() {
+        if *b == b'~' && !matches!(bytes.get(i + 1), Some(b'0' | b'1')) {
+            return Err(format!("`{pointer}`: `~` must be followed by 0 or 1 (RFC 6901 escapes)"));
+        }
+    }
+    Ok(())
+}
+
+fn validate_loop(config: &Config, l: &LoopConfig, path: &str, p: &Problems) {
+    if !is_loop_name(&l.name) {
+        p.at(&format!("{path}.name"), format!("loop name `{}` may only use a-z, 0-9 and `-`", l.name));
+    }
+    for (i, name) in l.objective.names().iter().enumerate() {
+        if config.tag(name).is_none() {
+            p.at(
+                &format!("{path}.objective"),
+                format!("`{name}` at column {} is not a tag defined in [tags]", l.objective.name_column(i)),
+            );
+        }
+    }
+    if l.method != MethodKind::Sine {
+        p.at(
+            &format!("{path}.method"),
+            format!("method \"{}\" is not available in this version; use \"sine\"", l.method),
+        );
+    }
+    let tick_ok = l.tick_s > 0.0;
+    if !tick_ok {
+        p.at(&format!("{path}.tick_s"), "must be greater than zero");
+    }
+    if let Some(permit) = &l.permit
+        && config.tag(permit).is_none()
+    {
+        p.at(&format!("{path}.permit"), format!("there is no tag `{permit}` in [tags]"));
+    }
+    if l.curvature_hint.is_some_and(|c| c <= 0.0) {
+        p.at(&format!("{path}.curvature_hint"), "must be greater than zero (it is |d2J/du2|)");
+    }
+    validate_filter(l, path, tick_ok, p);
+    validate_watchdog(l, path, p);
+    if let Some(hb) = &l.heartbeat {
+        match config.link(&hb.link).map(|link| &link.kind) {
+            None => {
+                p.at(&format!("{path}.heartbeat.link"), format!("there is no link `{}` in [links]", hb.link))
+            }
+            Some(LinkKind::HttpGet { .. }) => p.at(
+                &format!("{path}.heartbeat.link"),
+                format!("`{}` is an HTTP link; the heartbeat is a Modbus register", hb.link),
+            ),
+            Some(LinkKind::ModbusTcp { .. }) => {}
+        }
+    }
+    let mut names = HashSet::new();
+    for (i, input) in l.inputs.iter().enumerate() {
+        let ipath = format!("{path}.inputs[{i}]");
+        if !is_identifier(&input.name) {
+            p.at(&format!("{ipath}.name"), format!("input name `{}` must match [a-z][a-z0-9_]*", input.name));
+        } else if !names.insert(input.name.as_str()) {
+            p.at(
+                &format!("{ipath}.name"),
+                format!("`{}` is the name of another input of this loop", input.name),
+            );
+        }
+        validate_input(config, l, input, &ipath, p);
+    }
+    if tick_ok {
+        check_dither_frequencies(l, path, p);
+    }
+}
+
+fn validate_filter(l: &LoopConfig, path: &str, tick_ok: bool, p: &Problems) {
+    let f = &l.filter;
+    let slowest = l.inputs.iter().map(InputConfig::dither_hz).fold(f64::INFINITY, f64::min);
+    if f.highpass_hz <= 0.0 {
+        p.at(&format!("{path}.filter.highpass_hz"), "must be greater than zero");
+    } else if f.highpass_hz >= slowest {
+        p.at(
+            &format!("{path}.filter.highpass_hz"),
+            format!(
+                "{} Hz is not below the dither frequency {slowest:.6} Hz; the filter would remove the dither",
+                f.highpass_hz
+            ),
+        );
+    }
+    if let Some(lp) = f.lowpass_hz {
+        let nyquist = 0.5 / l.tick_s;
+        if lp <= 0.0 {
+            p.at(&format!("{path}.filter.lowpass_hz"), "must be greater than zero");
+        } else if tick_ok && lp >= nyquist {
+            p.at(
+                &format!("{path}.filter.lowpass_hz"),
+                format!("{lp} Hz must be below half the tick rate ({nyquist} Hz)"),
+            );
+        }
+    }
+    if f.phase_deg.abs() > 360.0 {
+        p.at(&format!("{path}.filter.phase_deg"), "must be within -360..360 degrees");
+    }
+}
+
+fn validate_watchdog(l: &LoopConfig, path: &str, p: &Problems) {
+    let w = &l.watchdog;
+    if w.stale_after_s <= 0.0 || (l.tick_s > 0.0 && w.stale_after_s < l.tick_s) {
+        p.at(
+            &format!("{path}.watchdog.stale_after_s"),
+            format!("must be at least one tick ({} s)", l.tick_s),
+        );
+    }
+    if let Some(r) = w.objective_range
+        && r.min >= r.max
+    {
+        p.at(&format!("{path}.watchdog.objective_range"), format!("{r} is empty: min must be below max"));
+    }
+    match (w.recover, w.recover_after_s) {
+        (Recover::Auto, None) => {
+            p.at(&format!("{path}.watchdog"), "recover = \"auto\" needs `recover_after_s`")
+        }
+        (Recover::Auto, Some(s)) if s <= 0.0 => {
+            p.at(&format!("{path}.watchdog.recover_after_s"), "must be greater than zero")
+        }
+        (Recover::Manual, Some(_)) => p.at(
+            &format!("{path}.watchdog.recover_after_s"),
+            "only applies with recover = \"auto\"; with manual recovery an operator leaves fallback",
+        ),
+        _ => {}
+    }
+}
+
+fn validate_input(config: &Config, l: &LoopConfig, input: &InputConfig, path: &str, p: &Problems) {
+    let w = &input.write;
+    match config.link(&w.link).map(|link| &link.kind) {
+        None => p.at(&format!("{path}.write.link"), format!("there is no link `{}` in [links]", w.link)),
+        Some(LinkKind::HttpGet { .. }) => p.at(
+            &format!("{path}.write.link"),
+            format!("`{}` is an HTTP link; setpoints are written over Modbus", w.link),
+        ),
+        Some(LinkKind::ModbusTcp { .. }) => {}
+    }
+    check_register_fits(w.holding_register, w.codec.kind, &format!("{path}.write"), p);
+    check_codec(&w.codec, &format!("{path}.write"), p);
+
+    let (limits, bounds) = (input.limits, input.bounds);
+    let limits_ok = limits.min < limits.max;
+    if !limits_ok {
+        p.at(&format!("{path}.limits"), format!("{limits} is empty: min must be below max"));
+    }
+    if bounds.min >= bounds.max {
+        p.at(&format!("{path}.bounds"), format!("{bounds} is empty: min must be below max"));
+    } else if limits_ok && !(limits.contains(bounds.min) && limits.contains(bounds.max)) {
+        p.at(&format!("{path}.bounds"), format!("{bounds} reaches outside the limits {limits}"));
+    } else if bounds.span() < 2.0 * input.dither_amplitude {
+        p.at(
+            &format!("{path}.dither_amplitude"),
+            format!("a dither of ±{} does not fit in the bounds {bounds}", input.dither_amplitude),
+        );
+    }
+    if limits_ok && !limits.contains(input.safe) {
+        p.at(&format!("{path}.safe"), format!("{} lies outside the limits {limits}", input.safe));
+    }
+    if limits_ok && let Some(why) = unencodable(&w.codec, limits) {
+        p.at(&format!("{path}.write"), why);
+    }
+    for (key, value) in [
+        ("max_rate_per_s", input.max_rate_per_s),
+        ("dither_amplitude", input.dither_amplitude),
+        ("dither_period_s", input.dither_period_s),
+        ("gain", input.gain),
+    ] {
+        if value <= 0.0 {
+            p.at(&format!("{path}.{key}"), "must be greater than zero");
+        }
+    }
+    if input.dither_amplitude > 0.0 && input.dither_period_s > 0.0 {
+        let dither_rate = 2.0 * std::f64::consts::PI * input.dither_amplitude / input.dither_period_s;
+        if input.max_rate_per_s > 0.0 && dither_rate > input.max_rate_per_s {
+            p.at(
+                &format!("{path}.max_rate_per_s"),
+                format!(
+                    "{} per s is below the dither's own rate 2*pi*a/P = {dither_rate:.6} per s; \
+                     lower dither_amplitude or lengthen dither_period_s",
+                    input.max_rate_per_s
+                ),
+            );
+        }
+        if l.tick_s > 0.0 && input.dither_period_s / l.tick_s < 8.0 {
+            p.at(
+                &format!("{path}.dither_period_s"),
+                format!(
+                    "{} s is only {:.1} ticks of {} s; the dither needs at least 8 ticks per period",
+                    input.dither_period_s,
+                    input.dither_period_s / l.tick_s,
+                    l.tick_s
+                ),
+            );
+        }
+    }
+}
+
+/// Whether the limits can be written in the register type at all, after scaling.
+fn unencodable(codec: &Codec, limits: super::Range) -> Option<String> {
+    let (lo, hi) = match codec.kind {
+        RegisterType::U16 => (0.0, f64::from(u16::MAX)),
+        RegisterType::I16 => (f64::from(i16::MIN), f64::from(i16::MAX)),
+        RegisterType::U32 => (0.0, f64::from(u32::MAX)),
+        RegisterType::I32 => (f64::from(i32::MIN), f64::from(i32::MAX)),
+        RegisterType::F32 => (-f64::from(f32::MAX), f64::from(f32::MAX)),
+    };
+    if codec.scale == 0.0 {
+        return None;
+    }
+    let raw = |v: f64| (v - codec.offset) / codec.scale;
+    let bad: Vec<_> =
+        [limits.min, limits.max].into_iter().filter(|&v| !(lo..=hi).contains(&raw(v))).collect();
+    (!bad.is_empty()).then(|| {
+        format!(
+            "the limits {limits} cannot be written as {} with scale {} and offset {} (raw value out of range for {:?})",
+            codec.kind, codec.scale, codec.offset, bad
+        )
+    })
+}
+
+/// Dither frequencies must stay apart after folding at the tick rate, or the
+/// demodulation of one input picks up another's dither (or its own harmonic).
+fn check_dither_frequencies(l: &LoopConfig, path: &str, p: &Problems) {
+    let fs = 1.0 / l.tick_s;
+    let fold = |f: f64| {
+        let r = f.rem_euclid(fs);
+        r.min(fs - r)
+    };
+    let same = |a: f64, b: f64| (fold(a) - fold(b)).abs() <= 1e-9 * fs;
+    let f: Vec<f64> = l.inputs.iter().map(InputConfig::dither_hz).collect();
+    if f.iter().any(|x| !x.is_finite() || *x <= 0.0) {
+        return;
+    }
+    let at = |i: usize| format!("{path}.inputs[{i}].dither_period_s");
+    let name = |i: usize| &l.inputs[i].name;
+    for i in 0..f.len() {
+        if same(f[i], fs / 2.0) {
+            p.at(
+                &at(i),
+                format!("a dither at {} Hz sits at half the tick rate and cannot be demodulated", f[i]),
+            );
+        }
+        for j in 0..f.len() {
+            if i == j {
+                continue;
+            }
+            if i < j && same(f[i], f[j]) {
+                p.at(
+                    &at(j),
+                    format!(
+                        "the dither of `{}` has the same frequency as `{}` after folding at the tick rate",
+                        name(j),
+                        name(i)
+                    ),
+                );
+            }
+            if same(2.0 * f[i], f[j]) {
+                p.at(
+                    &at(j),
+                    format!(
+                        "the dither of `{}` collides with twice the dither frequency of `{}`",
+                        name(j),
+                        name(i)
+                    ),
+                );
+            }
+            for k in 0..f.len() {
+                if k == i || k == j || i > j {
+                    continue;
+                }
+                if same(f[i] + f[j], f[k]) {
+                    p.at(
+                        &at(k),
+                        format!(
+                            "the dither of `{}` collides with the sum of those of `{}` and `{}`",
+                            name(k),
+                            name(i),
+                            name(j)
+                        ),
+                    );
+                }
+                if same((f[i] - f[j]).abs(), f[k]) {
+                    p.at(
+                        &at(k),
+                        format!(
+                            "the dither of `{}` collides with the difference of those of `{}` and `{}`",
+                            name(k),
+                            name(i),
+                            name(j)
+                        ),
+                    );
+                }
+            }
+        }
+    }
+}
+
+/// Two inputs writing overlapping registers on one link would fight each other.
+fn check_write_collisions(config: &Config, p: &Problems) {
+    let mut owners: HashMap<(&str, u16), String> = HashMap::new();
+    for (li, l) in config.loops.iter().enumerate() {
+        let mut claims: Vec<(String, &str, u16, u16)> = l
+            .inputs
+            .iter()
+            .enumerate()
+            .map(|(ii, input)| {
+                (
+                    format!("loops[{li}].inputs[{ii}].write"),
+                    input.write.link.as_str(),
+                    input.write.holding_register,
+                    input.write.codec.kind.width(),
+                )
+            })
+            .collect();
+        if let Some(hb) = &l.heartbeat {
+            claims.push((format!("loops[{li}].heartbeat"), hb.link.as_str(), hb.holding_register, 1));
+        }
+        for (path, link, start, width) in claims {
+            for reg in start..start.saturating_add(width) {
+                if let Some(owner) = owners.get(&(link, reg)) {
+                    p.at(&path, format!("register {reg} on link `{link}` is already written by {owner}"));
+                    break;
+                }
+            }
+            for reg in start..start.saturating_add(width) {
+                owners.entry((link, reg)).or_insert_with(|| path.clone());
+            }
+        }
+    }
+}

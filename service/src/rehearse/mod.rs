@@ -1,0 +1,470 @@
+//! Offline rehearsal: every configured loop against a plant model, as fast as the CPU
+//! allows, with the same core and guard as the live loop, scored against the plant's
+//! true optimum.
+//!
+//! Wiring follows the registers: an input's `write` register drives the plant input
+//! served at that holding register; a Modbus tag reads the plant output served at its
+//! input register (or the plant input at its holding register); an HTTP tag reads the
+//! plant output of the same name. All Modbus links are taken to be the one plant.
+//! Register encodings are not modelled: values pass as they are.
+
+pub mod optimum;
+pub mod plot;
+mod report;
+
+use std::fs::File;
+use std::io::{BufWriter, Write};
+use std::path::{Path, PathBuf};
+
+use anyhow::Context;
+
+use crate::config::{Config, Direction, FileProblems, LoopConfig, Problem, Range, RegisterSpace, TagSource};
+use crate::expr::Expr;
+use crate::seek::Seeker;
+use crate::seek::guard::{ObjectiveFault, check_objective, initial_estimate};
+use crate::sim::{Plant, PlantSpec, StaticMap};
+use optimum::OptimumTracker;
+use plot::{InputTrace, LoopTrace};
+pub use report::{Event, FinalInput, LoopReport, Report, human_duration};
+
+/// An estimate counts as settled within this fraction of its bounds span of the optimum.
+const SETTLED_FRACTION: f64 = 0.02;
+/// Loss is averaged over this last fraction of the run.
+const SCORED_FRACTION: f64 = 0.25;
+/// Events kept per loop in the report; the rest are only counted.
+const EVENTS_KEPT: usize = 20;
+
+/// What to run and what to write besides the report.
+#[derive(Debug, Clone, Default)]
+pub struct Options {
+    pub duration_s: f64,
+    /// Writes `<dir>/<loop>.csv` with every tick.
+    pub csv_dir: Option<PathBuf>,
+    /// Keeps every tick in memory for a plot.
+    pub keep_traces: bool,
+}
+
+/// The result of a rehearsal.
+#[derive(Debug)]
+pub struct Outcome {
+    pub report: Report,
+    /// Filled when [`Options::keep_traces`] was set.
+    pub traces: Vec<LoopTrace>,
+}
+
+/// Where a tag's value comes from in the plant.
+#[derive(Debug, Clone, Copy)]
+enum Source {
+    Output(usize),
+    Input(usize),
+}
+
+/// A configured loop wired to a plant model, ready to run.
+#[derive(Debug)]
+pub struct Rehearsal {
+    plant: Plant,
+    map: StaticMap,
+    loops: Vec<LoopRun>,
+}
+
+#[derive(Debug)]
+struct LoopRun {
+    config: LoopConfig,
+    seeker: Seeker,
+    /// Plant source of each of the objective's names, in `Expr::names` order.
+    sources: Vec<Source>,
+    /// Plant input index of each loop input.
+    plant_inputs: Vec<usize>,
+    tick: u64,
+    tracker: OptimumTracker,
+    stats: Stats,
+    csv: Option<BufWriter<File>>,
+    trace: Option<LoopTrace>,
+    // Reused every tick so the hot path does not allocate.
+    tag_values: Vec<f64>,
+    point: Vec<f64>,
+    bounds: Vec<Range>,
+    optimum: Vec<f64>,
+}
+
+impl Rehearsal {
+    /// Wires every loop of `config` to `plant`; problems name the config's key paths.
+    pub fn new(config: &Config, plant: &PlantSpec, config_file: &str) -> Result<Self, FileProblems> {
+        let mut problems = Vec::new();
+        let mut loops = Vec::new();
+        let model = Plant::new(plant);
+        for (li, l) in config.loops.iter().enumerate() {
+            let sources = l
+                .objective
+                .names()
+                .iter()
+                .filter_map(|name| match tag_source(config, plant, name) {
+                    Ok(s) => Some(s),
+                    Err(why) => {
+                        problems.push(problem(format!("tags.{name}"), why));
+                        None
+                    }
+                })
+                .collect::<Vec<_>>();
+            let plant_inputs = l
+                .inputs
+                .iter()
+                .enumerate()
+                .filter_map(|(ii, input)| {
+                    let register = input.write.holding_register;
+                    let found = plant.input_at_holding(register);
+                    if found.is_none() {
+                        problems.push(problem(
+                            format!("loops[{li}].inputs[{ii}].write.holding_register"),
+                            format!("the plant model serves no input at holding register {register}"),
+                        ));
+                    }
+                    found
+                })
+                .collect::<Vec<_>>();
+            if sources.len() != l.objective.names().len() || plant_inputs.len() != l.inputs.len() {
+                continue;
+            }
+            let estimates: Vec<f64> = l
+                .inputs
+                .iter()
+                .zip(&plant_inputs)
+                .map(|(input, &pi)| initial_estimate(Some(model.inputs()[pi]), input.bounds, input.safe))
+                .collect();
+            loops.push(LoopRun {
+                seeker: Seeker::for_loop(l, &estimates),
+                tracker: OptimumTracker::new(sign(l.direction), l.inputs.len()),
+                tag_values: vec![0.0; sources.len()],
+                point: vec![0.0; plant.inputs.len()],
+                bounds: l.inputs.iter().map(|i| i.bounds).collect(),
+                optimum: vec![0.0; l.inputs.len()],
+                sources,
+                plant_inputs,
+                tick: 0,
+                stats: Stats::default(),
+                csv: None,
+                trace: None,
+                config: l.clone(),
+            });
+        }
+        let mut seen = std::collections::HashMap::new();
+        for (li, l) in loops.iter().enumerate() {
+            for (ii, &pi) in l.plant_inputs.iter().enumerate() {
+                if let Some(other) = seen.insert(pi, li) {
+                    problems.push(problem(
+                        format!("loops[{li}].inputs[{ii}].write"),
+                        format!("drives the same plant input as loop `{}`", config.loops[other].name),
+                    ));
+                }
+            }
+        }
+        if problems.is_empty() {
+            Ok(Rehearsal { map: StaticMap::new(plant), plant: model, loops })
+        } else {
+            Err(FileProblems { file: config_file.to_owned(), problems })
+        }
+    }
+
+    /// Runs for `options.duration_s` of simulated time; `progress` hears the fraction done.
+    pub fn run(mut self, options: &Options, progress: &mut dyn FnMut(f64)) -> anyhow::Result<Outcome> {
+        let duration = options.duration_s;
+        for l in &mut self.loops {
+            if let Some(dir) = &options.csv_dir {
+                l.csv = Some(open_csv(dir, &l.config)?);
+            }
+            if options.keep_traces {
+                l.trace = Some(empty_trace(&l.config));
+            }
+        }
+        let mut last_reported = 0.0;
+        loop {
+            let next = self.loops.iter().map(LoopRun::next_time).fold(f64::INFINITY, f64::min);
+            if next >= duration {
+                break;
+            }
+            self.plant.advance_to(next);
+            for l in &mut self.loops {
+                if l.next_time() <= next {
+                    l.tick(next, duration, &mut self.plant, &mut self.map)?;
+                }
+            }
+            if next - last_reported >= duration / 200.0 {
+                last_reported = next;
+                progress(next / duration);
+            }
+        }
+        progress(1.0);
+        let mut traces = Vec::new();
+        let mut loops = Vec::new();
+        for mut l in self.loops {
+            if let Some(mut csv) = l.csv.take() {
+                csv.flush().context("could not finish writing a CSV file")?;
+            }
+            traces.extend(l.trace.take());
+            loops.push(l.report());
+        }
+        Ok(Outcome { report: Report { duration_s: duration, loops }, traces })
+    }
+}
+
+fn problem(path: String, message: String) -> Problem {
+    Problem { path, line: None, message }
+}
+
+fn sign(direction: Direction) -> f64 {
+    match direction {
+        Direction::Maximize => 1.0,
+        Direction::Minimize => -1.0,
+    }
+}
+
+fn tag_source(config: &Config, plant: &PlantSpec, name: &str) -> Result<Source, String> {
+    let Some(tag) = config.tag(name) else {
+        return Err("is not defined".into());
+    };
+    match &tag.source {
+        TagSource::Register { space: RegisterSpace::Input, address, .. } => plant
+            .output_at_input_register(*address)
+            .map(Source::Output)
+            .ok_or_else(|| format!("the plant model serves no output at input register {address}")),
+        TagSource::Register { space: RegisterSpace::Holding, address, .. } => plant
+            .input_at_holding(*address)
+            .map(Source::Input)
+            .ok_or_else(|| format!("the plant model serves no input at holding register {address}")),
+        TagSource::JsonPointer(_) => plant.output(name).map(Source::Output).ok_or_else(|| {
+            format!(
+                "an HTTP tag reads the plant output of the same name, and the plant has no output `{name}`"
+            )
+        }),
+    }
+}
+
+impl LoopRun {
+    fn next_time(&self) -> f64 {
+        self.tick as f64 * self.config.tick_s
+    }
+
+    fn tick(&mut self, t: f64, duration: f64, plant: &mut Plant, map: &mut StaticMap) -> anyhow::Result<()> {
+        for (value, source) in self.tag_values.iter_mut().zip(&self.sources) {
+            *value = match *source {
+                Source::Output(k) => plant.output(k),
+                Source::Input(i) => plant.inputs()[i],
+            };
+        }
+        let measured = self.config.objective.eval(&self.tag_values);
+        let acted = match check_objective(measured, self.config.watchdog.objective_range) {
+            Ok(objective) => self.seeker.step(self.tick, objective),
+            Err(fault) => {
+                self.stats.fault(t, fault, measured);
+                self.seeker.hold()
+            }
+        };
+        for (input, &pi) in self.seeker.inputs().iter().zip(&self.plant_inputs) {
+            plant.set_input(pi, input.applied);
+        }
+        self.stats.bound_hits += u64::from(acted.at_bound);
+        self.stats.rate_limited_ticks += u64::from(acted.rate_limited);
+
+        // Score against the plant's true optimum at this moment.
+        map.set_time(t);
+        for (b, input) in self.bounds.iter_mut().zip(self.seeker.inputs()) {
+            *b = input.guard.bounds;
+        }
+        let mut truth = TrueObjective {
+            map,
+            objective: &self.config.objective,
+            sources: &self.sources,
+            plant_inputs: &self.plant_inputs,
+            point: &mut self.point,
+            tag_values: &mut self.tag_values,
+        };
+        truth.point.copy_from_slice(plant.inputs());
+        self.optimum.copy_from_slice(self.tracker.find(&self.bounds, &mut |u| truth.at(u)));
+        let best = truth.at(&self.optimum);
+        let applied: Vec<f64> = self.seeker.inputs().iter().map(|i| i.applied).collect();
+        let achieved = truth.at(&applied);
+
+        let settled = self
+            .seeker
+            .inputs()
+            .iter()
+            .zip(&self.optimum)
+            .all(|(i, &x)| (i.estimate - x).abs() <= SETTLED_FRACTION * i.guard.bounds.span());
+        self.stats.note_settled(t, settled);
+        if t >= (1.0 - SCORED_FRACTION) * duration {
+            self.stats.scored_ticks += 1;
+            self.stats.loss_sum += (best - achieved).abs();
+            self.stats.best_sum += best.abs();
+        }
+        self.stats.ticks += 1;
+        self.record(t, measured, best)?;
+        self.tick += 1;
+        Ok(())
+    }
+
+    fn record(&mut self, t: f64, measured: f64, best: f64) -> anyhow::Result<()> {
+        if let Some(csv) = &mut self.csv {
+            write_row(csv, t, measured, best, self.seeker.inputs(), &self.optimum)
+                .with_context(|| format!("could not write the CSV file of loop {}", self.config.name))?;
+        }
+        if let Some(trace) = &mut self.trace {
+            trace.t_s.push(t);
+            trace.objective_values.push(if measured.is_finite() { measured } else { f64::NAN });
+            trace.best_objective.push(best);
+            for ((tr, input), &x) in trace.inputs.iter_mut().zip(self.seeker.inputs()).zip(&self.optimum) {
+                tr.applied.push(input.applied);
+                tr.estimate.push(input.estimate);
+                tr.optimum.push(x);
+            }
+        }
+        Ok(())
+    }
+
+    fn report(&self) -> LoopReport {
+        let s = &self.stats;
+        let mean_loss = (s.scored_ticks > 0).then(|| s.loss_sum / s.scored_ticks as f64);
+        let mean_best = s.best_sum / s.scored_ticks.max(1) as f64;
+        LoopReport {
+            name: self.config.name.clone(),
+            direction: self.config.direction.as_str(),
+            ticks: s.ticks,
+            settle_time_s: s.settled_since,
+            mean_loss,
+            relative_loss: mean_loss.filter(|_| mean_best > 0.0).map(|l| l / mean_best),
+            bound_hits: s.bound_hits,
+            rate_limited_ticks: s.rate_limited_ticks,
+            objective_faults: s.faults,
+            events: s.events.clone(),
+            inputs: self
+                .config
+                .inputs
+                .iter()
+                .zip(self.seeker.inputs())
+                .zip(&self.optimum)
+                .map(|((c, i), &x)| FinalInput { name: c.name.clone(), estimate: i.estimate, optimum: x })
+                .collect(),
+        }
+    }
+}
+
+/// The loop's objective on the plant's noise-free static map, as a function of the
+/// loop's inputs with every other plant input as it is.
+struct TrueObjective<'a> {
+    map: &'a mut StaticMap,
+    objective: &'a Expr,
+    sources: &'a [Source],
+    plant_inputs: &'a [usize],
+    point: &'a mut [f64],
+    tag_values: &'a mut [f64],
+}
+
+impl TrueObjective<'_> {
+    fn at(&mut self, inputs: &[f64]) -> f64 {
+        for (&pi, &v) in self.plant_inputs.iter().zip(inputs) {
+            self.point[pi] = v;
+        }
+        for (value, source) in self.tag_values.iter_mut().zip(self.sources) {
+            *value = match *source {
+                Source::Output(k) => self.map.output(k, self.point),
+                Source::Input(i) => self.point[i],
+            };
+        }
+        self.objective.eval(self.tag_values)
+    }
+}
+
+#[derive(Debug, Default)]
+struct Stats {
+    ticks: u64,
+    /// Start of the current stretch of settled ticks.
+    settled_since: Option<f64>,
+    scored_ticks: u64,
+    loss_sum: f64,
+    best_sum: f64,
+    bound_hits: u64,
+    rate_limited_ticks: u64,
+    faults: u64,
+    events: Vec<Event>,
+}
+
+impl Stats {
+    fn note_settled(&mut self, t: f64, settled: bool) {
+        match (settled, self.settled_since) {
+            (true, None) => self.settled_since = Some(t),
+            (false, Some(_)) => self.settled_since = None,
+            _ => {}
+        }
+    }
+
+    fn fault(&mut self, t: f64, fault: ObjectiveFault, value: f64) {
+        self.faults += 1;
+        if self.events.len() < EVENTS_KEPT {
+            self.events.push(Event {
+                t_s: t,
+                kind: fault.as_str(),
+                value: value.is_finite().then_some(value),
+            });
+        }
+    }
+}
+
+fn csv_header(config: &LoopConfig) -> String {
+    let mut header = String::from("t_s,objective,optimum_objective");
+    for input in &config.inputs {
+        for column in ["applied", "estimate", "gradient", "optimum"] {
+            header.push_str(&format!(",{}.{column}", input.name));
+        }
+    }
+    header
+}
+
+fn open_csv(dir: &Path, config: &LoopConfig) -> anyhow::Result<BufWriter<File>> {
+    std::fs::create_dir_all(dir)
+        .with_context(|| format!("could not create the CSV folder {}", dir.display()))?;
+    let path = dir.join(format!("{}.csv", config.name));
+    let file = File::create(&path).with_context(|| format!("could not create {}", path.display()))?;
+    let mut csv = BufWriter::new(file);
+    writeln!(csv, "{}", csv_header(config)).with_context(|| format!("could not write {}", path.display()))?;
+    Ok(csv)
+}
+
+fn write_row(
+    out: &mut impl Write,
+    t: f64,
+    measured: f64,
+    best: f64,
+    inputs: &[crate::seek::InputState],
+    optimum: &[f64],
+) -> std::io::Result<()> {
+    write!(out, "{t},")?;
+    // A non-finite objective is an empty cell, never `NaN` text in a numeric column.
+    if measured.is_finite() {
+        write!(out, "{measured}")?;
+    }
+    write!(out, ",{best}")?;
+    for (input, x) in inputs.iter().zip(optimum) {
+        write!(out, ",{},{},{},{x}", input.applied, input.estimate, input.gradient)?;
+    }
+    writeln!(out)
+}
+
+fn empty_trace(config: &LoopConfig) -> LoopTrace {
+    LoopTrace {
+        name: config.name.clone(),
+        objective: config.objective.to_string(),
+        direction: config.direction.as_str(),
+        t_s: Vec::new(),
+        objective_values: Vec::new(),
+        best_objective: Vec::new(),
+        inputs: config
+            .inputs
+            .iter()
+            .map(|i| InputTrace {
+                name: i.name.clone(),
+                applied: Vec::new(),
+                estimate: Vec::new(),
+                optimum: Vec::new(),
+            })
+            .collect(),
+    }
+}

@@ -1,0 +1,166 @@
+//! The rehearsal report: per loop how fast it settled, what it lost, and how often the
+//! guard had to act; printed for people or as JSON.
+
+use std::fmt::{self, Write as _};
+
+use serde::Serialize;
+use serde::ser::SerializeMap;
+
+#[derive(Debug, Clone, Serialize)]
+pub struct Report {
+    pub duration_s: f64,
+    pub loops: Vec<LoopReport>,
+}
+
+#[derive(Debug, Clone, Serialize)]
+pub struct LoopReport {
+    pub name: String,
+    pub direction: &'static str,
+    pub ticks: u64,
+    /// First time after which every estimate stayed within 2% of its bounds span of the
+    /// moving optimum; `None` when the run ended outside that band.
+    pub settle_time_s: Option<f64>,
+    /// Mean `|J(optimum) - J(applied)|` on the noise-free static map over the last quarter.
+    pub mean_loss: Option<f64>,
+    /// `mean_loss` over the mean `|J(optimum)|` of the same ticks.
+    pub relative_loss: Option<f64>,
+    /// Ticks in which the bounds held back an estimate or clipped a setpoint.
+    pub bound_hits: u64,
+    /// Ticks in which the rate limit cut a move of an estimate.
+    pub rate_limited_ticks: u64,
+    /// Ticks whose objective was not finite or outside the plausible range; the core
+    /// held its estimates and wrote them without dither.
+    pub objective_faults: u64,
+    /// The first few such events.
+    pub events: Vec<Event>,
+    #[serde(rename = "final", serialize_with = "inputs_by_name")]
+    pub inputs: Vec<FinalInput>,
+}
+
+#[derive(Debug, Clone, Serialize)]
+pub struct Event {
+    pub t_s: f64,
+    pub kind: &'static str,
+    /// The objective's value, when it was a number.
+    pub value: Option<f64>,
+}
+
+#[derive(Debug, Clone, Serialize)]
+pub struct FinalInput {
+    #[serde(skip)]
+    pub name: String,
+    pub estimate: f64,
+    pub optimum: f64,
+}
+
+/// `final` is an object keyed by input name, in config order.
+fn inputs_by_name<S: serde::Serializer>(inputs: &[FinalInput], s: S) -> Result<S::Ok, S::Error> {
+    let mut map = s.serialize_map(Some(inputs.len()))?;
+    for input in inputs {
+        map.serialize_entry(&input.name, input)?;
+    }
+    map.end()
+}
+
+impl fmt::Display for Report {
+    fn fmt(&self, f: &mut fmt::Formatter<'_>) -> fmt::Result {
+        for (i, l) in self.loops.iter().enumerate() {
+            if i > 0 {
+                writeln!(f)?;
+            }
+            write!(f, "{l}")?;
+        }
+        Ok(())
+    }
+}
+
+impl fmt::Display for LoopReport {
+    fn fmt(&self, f: &mut fmt::Formatter<'_>) -> fmt::Result {
+        writeln!(f, "loop {} ({}, {} ticks)", self.name, self.direction, self.ticks)?;
+        let settle = match self.settle_time_s {
+            Some(t) => format!("{} ({t} s)", human_duration(t)),
+            None => "never: the run ended more than 2% of the bounds span from the optimum".into(),
+        };
+        writeln!(f, "  settle time             {settle}")?;
+        let loss = match (self.mean_loss, self.relative_loss) {
+            (Some(l), Some(r)) => format!("{l:.6} ({:.3}% of the best objective)", 100.0 * r),
+            (Some(l), None) => format!("{l:.6}"),
+            _ => "n/a (no ticks)".into(),
+        };
+        writeln!(f, "  mean loss, last quarter {loss}")?;
+        writeln!(f, "  ticks at a bound        {}", self.bound_hits)?;
+        writeln!(f, "  ticks rate-limited      {}", self.rate_limited_ticks)?;
+        writeln!(f, "  objective faults        {}", self.objective_faults)?;
+        for e in &self.events {
+            let value = e.value.map_or_else(|| "not a number".into(), |v| v.to_string());
+            writeln!(f, "    at {} s: {} ({value})", e.t_s, e.kind)?;
+        }
+        let width = self.inputs.iter().map(|i| i.name.len()).max().unwrap_or(0).max(5);
+        writeln!(f, "  {:width$}  {:>14}  {:>14}", "input", "final estimate", "optimum")?;
+        for i in &self.inputs {
+            writeln!(f, "  {:width$}  {:>14.6}  {:>14.6}", i.name, i.estimate, i.optimum)?;
+        }
+        Ok(())
+    }
+}
+
+/// `1h 12m 5s` style, for reading; the report keeps seconds beside it.
+pub fn human_duration(seconds: f64) -> String {
+    let total = seconds.round() as u64;
+    let (d, h, m, s) = (total / 86_400, total / 3600 % 24, total / 60 % 60, total % 60);
+    let mut out = String::new();
+    for (value, unit) in [(d, "d"), (h, "h"), (m, "m"), (s, "s")] {
+        if value > 0 {
+            let _ = write!(out, "{}{value}{unit}", if out.is_empty() { "" } else { " " });
+        }
+    }
+    if out.is_empty() { "0s".into() } else { out }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn json_report_has_the_documented_fields() {
+        let report = Report {
+            duration_s: 60.0,
+            loops: vec![LoopReport {
+                name: "a".into(),
+                direction: "maximize",
+                ticks: 60,
+                settle_time_s: None,
+                mean_loss: Some(0.5),
+                relative_loss: Some(0.1),
+                bound_hits: 1,
+                rate_limited_ticks: 2,
+                objective_faults: 0,
+                events: vec![],
+                inputs: vec![FinalInput { name: "u".into(), estimate: 1.0, optimum: 2.0 }],
+            }],
+        };
+        let v = serde_json::to_value(&report).unwrap();
+        let l = &v["loops"][0];
+        for key in [
+            "name",
+            "settle_time_s",
+            "mean_loss",
+            "relative_loss",
+            "bound_hits",
+            "rate_limited_ticks",
+            "final",
+        ] {
+            assert!(l.get(key).is_some(), "missing {key}");
+        }
+        assert!(l["settle_time_s"].is_null());
+        assert_eq!(l["final"]["u"]["estimate"], 1.0);
+        assert_eq!(l["final"]["u"]["optimum"], 2.0);
+    }
+
+    #[test]
+    fn durations_read_like_a_clock() {
+        assert_eq!(human_duration(4325.0), "1h 12m 5s");
+        assert_eq!(human_duration(0.2), "0s");
+        assert_eq!(human_duration(90_000.0), "1d 1h");
+    }
+}

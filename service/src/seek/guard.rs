@@ -1,0 +1,157 @@
+//! Operating bounds and rate limit on each input: the one place that decides what may
+//! be written, shared by the live loop and the rehearsal.
+
+use crate::config::Range;
+
+/// The limits one input's estimate and applied setpoint obey.
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub struct InputGuard {
+    /// Operating range; the applied setpoint, dither included, never leaves it.
+    pub bounds: Range,
+    /// Dither amplitude: the estimate is kept `amplitude` inside the bounds (anti-windup).
+    pub amplitude: f64,
+    /// Largest change of the estimate per tick (`max_rate_per_s * tick_s`).
+    pub max_step: f64,
+}
+
+/// A value after the guard, and whether the guard had to act.
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub struct Guarded {
+    pub value: f64,
+    pub at_bound: bool,
+    pub rate_limited: bool,
+}
+
+impl InputGuard {
+    /// Moves the estimate from `current` toward `proposed`: the target is held so that
+    /// `estimate ± amplitude` stays in the bounds, and the move is cut to `max_step`.
+    /// An estimate left outside narrowed bounds walks back in at the rate limit.
+    pub fn next_estimate(&self, current: f64, proposed: f64) -> Guarded {
+        let (lo, hi) = self.estimate_range();
+        let proposed = if proposed.is_finite() { proposed } else { current };
+        let target = proposed.clamp(lo, hi);
+        let at_bound = target != proposed;
+        let step = target - current;
+        if step.abs() > self.max_step {
+            Guarded { value: current + self.max_step.copysign(step), at_bound, rate_limited: true }
+        } else {
+            Guarded { value: target, at_bound, rate_limited: false }
+        }
+    }
+
+    /// The setpoint to write: estimate plus dither, clamped to the bounds.
+    pub fn applied(&self, estimate: f64, dither: f64) -> Guarded {
+        let wanted = estimate + dither;
+        let value = self.clamp(wanted);
+        Guarded { value, at_bound: value != wanted, rate_limited: false }
+    }
+
+    /// Clamps to the bounds; a non-finite value becomes the middle of the bounds, never NaN.
+    pub fn clamp(&self, value: f64) -> f64 {
+        if value.is_nan() {
+            0.5 * (self.bounds.min + self.bounds.max)
+        } else {
+            value.clamp(self.bounds.min, self.bounds.max)
+        }
+    }
+
+    /// Where the estimate may sit: the bounds shrunk by the dither amplitude on each side
+    /// (their middle when they are too narrow for the dither).
+    fn estimate_range(&self) -> (f64, f64) {
+        let (lo, hi) = (self.bounds.min + self.amplitude, self.bounds.max - self.amplitude);
+        if lo <= hi {
+            (lo, hi)
+        } else {
+            let mid = 0.5 * (self.bounds.min + self.bounds.max);
+            (mid, mid)
+        }
+    }
+}
+
+/// Why an objective sample must not reach the core.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum ObjectiveFault {
+    /// NaN or infinite, e.g. a division by a tag that reads zero.
+    NotFinite,
+    /// Outside the watchdog's plausible range.
+    OutOfRange,
+}
+
+impl ObjectiveFault {
+    pub fn as_str(self) -> &'static str {
+        match self {
+            ObjectiveFault::NotFinite => "objective_not_finite",
+            ObjectiveFault::OutOfRange => "objective_out_of_range",
+        }
+    }
+}
+
+/// Lets an objective sample through only when it is finite and plausible.
+pub fn check_objective(value: f64, plausible: Option<Range>) -> Result<f64, ObjectiveFault> {
+    if !value.is_finite() {
+        Err(ObjectiveFault::NotFinite)
+    } else if plausible.is_some_and(|r| !r.contains(value)) {
+        Err(ObjectiveFault::OutOfRange)
+    } else {
+        Ok(value)
+    }
+}
+
+/// Where a loop starts: the setpoint read back from the PLC when it is inside the
+/// bounds, else the configured safe value (clamped into the bounds).
+pub fn initial_estimate(read_back: Option<f64>, bounds: Range, safe: f64) -> f64 {
+    match read_back {
+        Some(v) if v.is_finite() && bounds.contains(v) => v,
+        _ => safe.clamp(bounds.min, bounds.max),
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    fn guard() -> InputGuard {
+        InputGuard { bounds: Range { min: 1.0, max: 2.0 }, amplitude: 0.1, max_step: 0.05 }
+    }
+
+    #[test]
+    fn estimate_stays_a_dither_amplitude_inside_the_bounds() {
+        let g = guard().next_estimate(1.88, 1.95);
+        assert_eq!(g.value, 1.9);
+        assert!(g.at_bound && !g.rate_limited);
+    }
+
+    #[test]
+    fn estimate_moves_at_most_one_step_per_tick() {
+        let g = guard().next_estimate(1.5, 1.7);
+        assert!((g.value - 1.55).abs() < 1e-15);
+        assert!(g.rate_limited);
+    }
+
+    #[test]
+    fn estimate_outside_narrowed_bounds_walks_back_at_the_rate_limit() {
+        let g = guard().next_estimate(2.5, 2.5);
+        assert!((g.value - 2.45).abs() < 1e-15);
+        assert!(g.at_bound && g.rate_limited);
+    }
+
+    #[test]
+    fn non_finite_proposals_leave_the_estimate_where_it_was() {
+        assert_eq!(guard().next_estimate(1.5, f64::NAN).value, 1.5);
+        assert_eq!(guard().next_estimate(1.5, f64::INFINITY).value, 1.5);
+    }
+
+    #[test]
+    fn applied_setpoint_is_clamped_to_the_bounds() {
+        assert_eq!(guard().applied(1.95, 0.1).value, 2.0);
+        assert_eq!(guard().applied(f64::NAN, 0.1).value, 1.5);
+    }
+
+    #[test]
+    fn start_uses_the_read_back_value_only_inside_the_bounds() {
+        let b = Range { min: 1.0, max: 2.0 };
+        assert_eq!(initial_estimate(Some(1.2), b, 1.5), 1.2);
+        assert_eq!(initial_estimate(Some(2.2), b, 1.5), 1.5);
+        assert_eq!(initial_estimate(None, b, 3.0), 2.0);
+    }
+}
