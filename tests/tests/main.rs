@@ -1,0 +1,13 @@
+//! Ridgeline's black-box and reference checks, as one test binary.
+//!
+//! Each check against an outside source names it beside the assertion.
+
+mod bad_input;
+mod check_command;
+mod classic_loop;
+mod drive;
+mod filters;
+mod plant_lag;
+mod properties;
+mod rehearse_command;
+mod several_inputs;

@@ -1,0 +1,159 @@
+//! `ridgeline rehearse`: the example converges, the same case gives the same numbers as
+//! driving the core directly, and faults are reported instead of written.
+
+use ridgeline::config::Range;
+use ridgeline_tests::{ridgeline, write_file};
+
+use crate::check_command::{config, root};
+use crate::drive::{decay_time_constant, input, run, seeker, settings};
+
+fn rehearse(config: &str, plant: &str, extra: &[&str]) -> ridgeline_tests::Run {
+    let mut args = vec!["rehearse", "--config", config, "--plant", plant];
+    args.extend_from_slice(extra);
+    ridgeline(&args)
+}
+
+fn json(run: &ridgeline_tests::Run) -> serde_json::Value {
+    assert_eq!(run.code, Some(0), "{}", run.stderr);
+    serde_json::from_str(&run.stdout).unwrap_or_else(|e| panic!("not JSON ({e}):\n{}", run.stdout))
+}
+
+/// Parses a rehearsal CSV into its header and rows of numbers (NaN for empty cells).
+fn read_csv(path: &std::path::Path) -> (Vec<String>, Vec<Vec<f64>>) {
+    let text = std::fs::read_to_string(path).expect("CSV written");
+    let mut lines = text.lines();
+    let header = lines.next().expect("header").split(',').map(str::to_owned).collect();
+    let rows = lines
+        .map(|l| {
+            l.split(',').map(|c| if c.is_empty() { f64::NAN } else { c.parse().expect("number") }).collect()
+        })
+        .collect();
+    (header, rows)
+}
+
+#[test]
+fn the_example_converges_and_writes_report_plot_and_csv() {
+    let dir = tempfile::tempdir().unwrap();
+    let (cfg, plant) =
+        (root().join("config/rehearse-example.toml"), root().join("config/rehearse-example-plant.toml"));
+    let (svg, csv) = (dir.path().join("r.svg"), dir.path().join("csv"));
+    let run = rehearse(
+        cfg.to_str().unwrap(),
+        plant.to_str().unwrap(),
+        &["--duration", "6h", "--json", "--plot", svg.to_str().unwrap(), "--csv", csv.to_str().unwrap()],
+    );
+    let report = json(&run);
+    let l = &report["loops"][0];
+    assert_eq!(l["name"], "dryer-1-inlet");
+    assert_eq!(l["ticks"], 10_800);
+    let settle = l["settle_time_s"].as_f64().expect("settles");
+    assert!(settle < 3.0 * 3600.0, "settled only after {settle} s");
+    let last = &l["final"]["inlet_temp_degc"];
+    let miss = (last["estimate"].as_f64().unwrap() - last["optimum"].as_f64().unwrap()).abs();
+    assert!(miss < 0.02 * 40.0, "ends {miss} from the optimum");
+    assert!(l["relative_loss"].as_f64().unwrap() < 0.005, "{l}");
+    assert_eq!(l["bound_hits"], 0);
+
+    let picture = std::fs::read_to_string(&svg).expect("SVG written");
+    assert!(picture.starts_with("<svg") && picture.trim_end().ends_with("</svg>"));
+    assert!(picture.contains("dryer-1-inlet") && picture.contains("inlet_temp_degc"));
+
+    let (header, rows) = read_csv(&csv.join("dryer-1-inlet.csv"));
+    assert_eq!(
+        header.join(","),
+        "t_s,objective,optimum_objective,inlet_temp_degc.applied,inlet_temp_degc.estimate,inlet_temp_degc.gradient,inlet_temp_degc.optimum"
+    );
+    assert_eq!(rows.len(), 10_800);
+    assert!(rows.windows(2).all(|w| w[1][0] - w[0][0] == 2.0), "one row per 2 s tick");
+}
+
+const CLASSIC_PLANT: &str = r#"
+step_s = 0.25
+[[inputs]]
+name = "u"
+initial = 2.7
+holding_register = 0
+[[outputs]]
+name = "y"
+input_register = 0
+expression = "10 - 2 * (u - 3)^2"
+"#;
+
+#[test]
+fn rehearsing_the_classic_case_matches_driving_the_core_directly() {
+    let dir = tempfile::tempdir().unwrap();
+    let cfg = write_file(dir.path(), "classic.toml", &config(&[]));
+    let plant = write_file(dir.path(), "classic-plant.toml", CLASSIC_PLANT);
+    let csv = dir.path().join("csv");
+    let report = json(&rehearse(
+        cfg.to_str().unwrap(),
+        plant.to_str().unwrap(),
+        &["--duration", "6000s", "--json", "--csv", csv.to_str().unwrap()],
+    ));
+    let (_, rows) = read_csv(&csv.join("test-loop.csv"));
+
+    let mut core = seeker(
+        &settings(1.0, 0.01, 0.0, vec![input(0.1, 20.0, 0.00125)]),
+        Range { min: 0.0, max: 6.0 },
+        &[2.7],
+    );
+    let direct = run(&mut core, 6000, |u| 10.0 - 2.0 * (u[0] - 3.0).powi(2));
+    // Source: CHECKS.md "Classic loop": rehearse gives the same numbers as driving the core directly.
+    for (n, row) in rows.iter().enumerate() {
+        assert_eq!(row[1].to_bits(), direct.objective[n].to_bits(), "objective at tick {n}");
+        assert_eq!(row[3].to_bits(), direct.applied[n][0].to_bits(), "applied at tick {n}");
+        assert_eq!(row[4].to_bits(), direct.estimates[n][0].to_bits(), "estimate at tick {n}");
+    }
+    let error: Vec<f64> = rows.iter().map(|r| r[4] - 3.0).collect();
+    let tau = decay_time_constant(&error, 20, 0.8, 0.02);
+    // Source: averaged system (Tan, Nešić & Mareels 2006), about 207.4 s (CHECKS.md).
+    assert!((tau / 207.4 - 1.0).abs() < 0.03, "time constant {tau}");
+    let l = &report["loops"][0];
+    // Source: averaged system, mean loss c a^2 / 2 = 0.0100 (CHECKS.md), over the last quarter.
+    assert!((l["mean_loss"].as_f64().unwrap() / 0.01 - 1.0).abs() < 0.02, "{l}");
+    assert!((l["final"]["u"]["optimum"].as_f64().unwrap() - 3.0).abs() < 1e-6, "{l}");
+}
+
+#[test]
+fn a_non_finite_objective_is_reported_and_never_written() {
+    let dir = tempfile::tempdir().unwrap();
+    // The objective takes a square root of a value that is negative half of the time.
+    let cfg =
+        write_file(dir.path(), "nan.toml", &config(&[("objective = \"y\"", "objective = \"sqrt(y)\"")]));
+    let plant = write_file(
+        dir.path(),
+        "nan-plant.toml",
+        &CLASSIC_PLANT.replace("\"10 - 2 * (u - 3)^2\"", "\"10 - 2 * (u - 3)^2 + 20 * swing\"").replace(
+            "[[outputs]]",
+            "[[drifts]]\nname = \"swing\"\nstart = 0\nsine_amplitude = 1\nsine_period_s = 600\n[[outputs]]",
+        ),
+    );
+    let csv = dir.path().join("csv");
+    let report = json(&rehearse(
+        cfg.to_str().unwrap(),
+        plant.to_str().unwrap(),
+        &["--duration", "1h", "--json", "--csv", csv.to_str().unwrap()],
+    ));
+    let l = &report["loops"][0];
+    assert!(l["objective_faults"].as_u64().unwrap() > 100, "{l}");
+    assert_eq!(l["events"][0]["kind"], "objective_not_finite");
+    let (_, rows) = read_csv(&csv.join("test-loop.csv"));
+    assert!(rows.iter().any(|r| r[1].is_nan()), "some objectives were not finite");
+    for r in &rows {
+        assert!(r[3].is_finite() && (0.0..=6.0).contains(&r[3]), "applied {}", r[3]);
+    }
+}
+
+#[test]
+fn a_config_that_does_not_fit_the_plant_names_the_key() {
+    let dir = tempfile::tempdir().unwrap();
+    let cfg = write_file(dir.path(), "c.toml", &config(&[("holding_register = 0", "holding_register = 40")]));
+    let plant = write_file(dir.path(), "p.toml", CLASSIC_PLANT);
+    let run = rehearse(cfg.to_str().unwrap(), plant.to_str().unwrap(), &[]);
+    assert_eq!(run.code, Some(2));
+    assert!(
+        run.stderr.contains("loops[0].inputs[0].write.holding_register: the plant model serves no input at holding register 40"),
+        "{}",
+        run.stderr
+    );
+}
