@@ -207,6 +207,9 @@ fn run<const N: usize>(code: &[Op], values: &[f64]) -> f64 {
             Op::Sqrt => top.sqrt(),
             Op::Exp => top.exp(),
             Op::Ln => top.ln(),
+            // Squares are the common case (quadratic plant maps); `x * x` is what `powi(2)`
+            // computes, without the call into the runtime's generic power loop.
+            Op::PowI(2) => top * top,
             Op::PowI(k) => top.powi(k),
             Op::AddC(c) => top + c,
             Op::SubC(c) => top - c,

@@ -33,6 +33,8 @@ const SETTLED_FRACTION: f64 = 0.02;
 const SCORED_FRACTION: f64 = 0.25;
 /// Events kept per loop in the report; the rest are only counted.
 const EVENTS_KEPT: usize = 20;
+/// Samples a plot trace keeps per loop; longer runs keep per-bucket extremes instead.
+const TRACE_SAMPLES: u64 = 200_000;
 
 /// What to run and what to write besides the report.
 #[derive(Debug, Clone, Default)]
@@ -79,12 +81,13 @@ struct LoopRun {
     tracker: OptimumTracker,
     stats: Stats,
     csv: Option<BufWriter<File>>,
-    trace: Option<LoopTrace>,
+    trace: Option<TraceRecorder>,
     // Reused every tick so the hot path does not allocate.
     tag_values: Vec<f64>,
     point: Vec<f64>,
     bounds: Vec<Range>,
     optimum: Vec<f64>,
+    applied: Vec<f64>,
 }
 
 impl Rehearsal {
@@ -138,6 +141,7 @@ impl Rehearsal {
                 point: vec![0.0; plant.inputs.len()],
                 bounds: l.inputs.iter().map(|i| i.bounds).collect(),
                 optimum: vec![0.0; l.inputs.len()],
+                applied: vec![0.0; l.inputs.len()],
                 sources,
                 plant_inputs,
                 tick: 0,
@@ -173,7 +177,8 @@ impl Rehearsal {
                 l.csv = Some(open_csv(dir, &l.config)?);
             }
             if options.keep_traces {
-                l.trace = Some(empty_trace(&l.config));
+                let ticks = (duration / l.config.tick_s).ceil() as u64;
+                l.trace = Some(TraceRecorder::new(empty_trace(&l.config), ticks));
             }
         }
         let mut last_reported = 0.0;
@@ -200,7 +205,7 @@ impl Rehearsal {
             if let Some(mut csv) = l.csv.take() {
                 csv.flush().context("could not finish writing a CSV file")?;
             }
-            traces.extend(l.trace.take());
+            traces.extend(l.trace.take().map(TraceRecorder::finish));
             loops.push(l.report());
         }
         Ok(Outcome { report: Report { duration_s: duration, loops }, traces })
@@ -279,10 +284,18 @@ impl LoopRun {
             tag_values: &mut self.tag_values,
         };
         truth.point.copy_from_slice(plant.inputs());
-        self.optimum.copy_from_slice(self.tracker.find(&self.bounds, &mut |u| truth.at(u)));
+        // Setpoints whose objective the watchdog would call implausible are not achievable.
+        let plausible = self.config.watchdog.objective_range;
+        let mut feasible = |u: &[f64]| {
+            let j = truth.at(u);
+            if check_objective(j, plausible).is_ok() { j } else { f64::NAN }
+        };
+        self.optimum.copy_from_slice(self.tracker.find(&self.bounds, &mut feasible));
         let best = truth.at(&self.optimum);
-        let applied: Vec<f64> = self.seeker.inputs().iter().map(|i| i.applied).collect();
-        let achieved = truth.at(&applied);
+        for (a, input) in self.applied.iter_mut().zip(self.seeker.inputs()) {
+            *a = input.applied;
+        }
+        let achieved = truth.at(&self.applied);
 
         let settled = self
             .seeker
@@ -308,14 +321,7 @@ impl LoopRun {
                 .with_context(|| format!("could not write the CSV file of loop {}", self.config.name))?;
         }
         if let Some(trace) = &mut self.trace {
-            trace.t_s.push(t);
-            trace.objective_values.push(if measured.is_finite() { measured } else { f64::NAN });
-            trace.best_objective.push(best);
-            for ((tr, input), &x) in trace.inputs.iter_mut().zip(self.seeker.inputs()).zip(&self.optimum) {
-                tr.applied.push(input.applied);
-                tr.estimate.push(input.estimate);
-                tr.optimum.push(x);
-            }
+            trace.push(t, measured, best, self.seeker.inputs(), &self.optimum);
         }
         Ok(())
     }
@@ -448,6 +454,103 @@ fn write_row(
     writeln!(out)
 }
 
+/// Records a loop's trace for the plot with bounded memory: every tick up to
+/// [`TRACE_SAMPLES`], else per bucket of ticks the smallest and the largest value of each
+/// series, which keeps the dither band and the noise visible.
+#[derive(Debug)]
+struct TraceRecorder {
+    trace: LoopTrace,
+    ticks_per_bucket: u64,
+    in_bucket: u64,
+    bucket_start_s: f64,
+    last_s: f64,
+    /// Per series: objective, best, then applied, estimate and optimum of each input.
+    low: Vec<f64>,
+    high: Vec<f64>,
+    values: Vec<f64>,
+}
+
+impl TraceRecorder {
+    fn new(trace: LoopTrace, expected_ticks: u64) -> Self {
+        let series = 2 + 3 * trace.inputs.len();
+        let ticks_per_bucket =
+            if expected_ticks <= TRACE_SAMPLES { 1 } else { expected_ticks.div_ceil(TRACE_SAMPLES / 2) };
+        TraceRecorder {
+            trace,
+            ticks_per_bucket,
+            in_bucket: 0,
+            bucket_start_s: 0.0,
+            last_s: 0.0,
+            low: vec![f64::NAN; series],
+            high: vec![f64::NAN; series],
+            values: vec![0.0; series],
+        }
+    }
+
+    fn push(
+        &mut self,
+        t: f64,
+        measured: f64,
+        best: f64,
+        inputs: &[crate::seek::InputState],
+        optimum: &[f64],
+    ) {
+        self.last_s = t;
+        self.values[0] = if measured.is_finite() { measured } else { f64::NAN };
+        self.values[1] = best;
+        for (k, (input, &x)) in inputs.iter().zip(optimum).enumerate() {
+            self.values[2 + 3 * k..5 + 3 * k].copy_from_slice(&[input.applied, input.estimate, x]);
+        }
+        if self.ticks_per_bucket == 1 {
+            let values = std::mem::take(&mut self.values);
+            self.append(t, &values);
+            self.values = values;
+            return;
+        }
+        if self.in_bucket == 0 {
+            self.bucket_start_s = t;
+        }
+        // f64::min and max skip NaN, so a bucket is NaN only when all of it was.
+        for ((lo, hi), &v) in self.low.iter_mut().zip(self.high.iter_mut()).zip(&self.values) {
+            *lo = lo.min(v);
+            *hi = hi.max(v);
+        }
+        self.in_bucket += 1;
+        if self.in_bucket == self.ticks_per_bucket {
+            self.flush(t);
+        }
+    }
+
+    fn flush(&mut self, t: f64) {
+        if self.in_bucket == 0 {
+            return;
+        }
+        let (low, high) = (std::mem::take(&mut self.low), std::mem::take(&mut self.high));
+        self.append(self.bucket_start_s, &low);
+        self.append(0.5 * (self.bucket_start_s + t), &high);
+        self.low = vec![f64::NAN; low.len()];
+        self.high = vec![f64::NAN; high.len()];
+        self.in_bucket = 0;
+    }
+
+    fn append(&mut self, t: f64, values: &[f64]) {
+        let trace = &mut self.trace;
+        trace.t_s.push(t);
+        trace.objective_values.push(values[0]);
+        trace.best_objective.push(values[1]);
+        for (k, tr) in trace.inputs.iter_mut().enumerate() {
+            tr.applied.push(values[2 + 3 * k]);
+            tr.estimate.push(values[3 + 3 * k]);
+            tr.optimum.push(values[4 + 3 * k]);
+        }
+    }
+
+    fn finish(mut self) -> LoopTrace {
+        self.flush(self.last_s);
+        self.trace
+    }
+}
+
 fn empty_trace(config: &LoopConfig) -> LoopTrace {
     LoopTrace {
         name: config.name.clone(),
@@ -466,5 +569,51 @@ fn empty_trace(config: &LoopConfig) -> LoopTrace {
                 optimum: Vec::new(),
             })
             .collect(),
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use crate::config::Range;
+    use crate::seek::InputState;
+    use crate::seek::guard::InputGuard;
+
+    fn input(applied: f64) -> InputState {
+        let guard = InputGuard { bounds: Range { min: -10.0, max: 10.0 }, amplitude: 1.0, max_step: 1.0 };
+        InputState { guard, estimate: 0.0, applied, gradient: 0.0 }
+    }
+
+    fn trace() -> LoopTrace {
+        LoopTrace { inputs: vec![InputTrace::default()], ..LoopTrace::default() }
+    }
+
+    #[test]
+    fn short_runs_keep_every_tick_in_the_trace() {
+        let mut r = TraceRecorder::new(trace(), 100);
+        for n in 0..100 {
+            r.push(f64::from(n), 1.0, 2.0, &[input(f64::from(n))], &[0.0]);
+        }
+        let t = r.finish();
+        assert_eq!(t.t_s.len(), 100);
+        assert_eq!(t.inputs[0].applied[42], 42.0);
+    }
+
+    #[test]
+    fn long_runs_keep_a_bounded_trace_with_the_dither_band() {
+        let ticks = 3 * TRACE_SAMPLES + 7;
+        let mut r = TraceRecorder::new(trace(), ticks);
+        for n in 0..ticks {
+            let dither = (n as f64 * 0.7).sin();
+            let objective = if n % 5 == 0 { f64::NAN } else { dither };
+            r.push(n as f64, objective, 0.0, &[input(dither)], &[0.0]);
+        }
+        let t = r.finish();
+        assert!(t.t_s.len() as u64 <= TRACE_SAMPLES + 2, "{}", t.t_s.len());
+        let applied = &t.inputs[0].applied;
+        assert!(applied.iter().cloned().fold(f64::MIN, f64::max) > 0.99);
+        assert!(applied.iter().cloned().fold(f64::MAX, f64::min) < -0.99);
+        assert!(t.objective_values.iter().all(|v| v.is_finite()), "a bucket with numbers is never NaN");
+        assert!(t.t_s.windows(2).all(|w| w[0] <= w[1]));
     }
 }

@@ -552,7 +552,7 @@ mod tests {
     }
 
     #[test]
-    fn renders_valid_svg_with_names_and_axis_titles() {
+    fn the_svg_is_well_formed_and_names_loops_inputs_and_axes() {
         let svg = render_to_string(&[example(5000, 1.0)], "names");
         assert_plausible_svg(&svg);
         for needle in [
@@ -571,7 +571,7 @@ mod tests {
     }
 
     #[test]
-    fn decimation_respects_cap_in_file() {
+    fn no_polyline_in_the_file_exceeds_the_point_cap() {
         let svg = render_to_string(&[example(100_000, 1.0)], "cap");
         assert_plausible_svg(&svg);
         assert!(svg.contains("time [h]"));
@@ -581,7 +581,7 @@ mod tests {
     }
 
     #[test]
-    fn decimation_keeps_envelope_and_cap() {
+    fn decimation_keeps_the_envelope_within_the_cap() {
         let n = 100_000;
         let t: Vec<f64> = (0..n).map(|i| i as f64).collect();
         let y: Vec<f64> = t.iter().map(|t| (t / 7.0).sin()).collect();
@@ -598,7 +598,7 @@ mod tests {
     }
 
     #[test]
-    fn nan_leaves_gap() {
+    fn a_nan_leaves_a_gap_in_the_line() {
         let t = [0.0, 1.0, 2.0, 3.0, 4.0];
         let y = [1.0, 2.0, f64::NAN, 4.0, 5.0];
         let runs = segments(&decimate(&t, &y, MAX_POINTS));
@@ -606,7 +606,7 @@ mod tests {
     }
 
     #[test]
-    fn empty_and_tiny_inputs_say_no_data() {
+    fn empty_and_tiny_traces_say_no_data() {
         for n in [0, 1] {
             let mut lp = example(n, 1.0);
             lp.inputs[0].name = "fuel_kw".to_string();
@@ -637,7 +637,7 @@ mod tests {
     }
 
     #[test]
-    fn constant_series_gets_symmetric_range() {
+    fn a_constant_series_gets_a_symmetric_range() {
         assert_eq!(widen_if_flat(2.0, 2.0, 0.05), (1.9, 2.1));
         assert_eq!(widen_if_flat(0.0, 0.0, 0.05), (-1.0, 1.0));
         let (lo, hi) = widen_if_flat(-10.0, -10.0, 0.05);
@@ -645,14 +645,14 @@ mod tests {
     }
 
     #[test]
-    fn output_is_deterministic() {
+    fn the_same_traces_give_the_same_file() {
         let a = render_to_string(&[example(3000, 2.0)], "det-a");
         let b = render_to_string(&[example(3000, 2.0)], "det-b");
         assert_eq!(a, b);
     }
 
     #[test]
-    fn error_names_path() {
+    fn a_write_error_names_the_path() {
         let path = Path::new("/nonexistent-dir-for-plot-test/out.svg");
         let err = write_svg(path, &[example(10, 1.0)]).err().map(|e| e.to_string());
         let msg = err.unwrap_or_default();
@@ -660,7 +660,7 @@ mod tests {
     }
 
     #[test]
-    fn tick_labels_follow_step() {
+    fn tick_labels_show_the_decimals_the_step_needs() {
         let f = tick_formatter((0.0, 1.0), 6);
         assert_eq!(f(&0.2), "0.2");
         let f = tick_formatter((0.0, 6.0), 12);

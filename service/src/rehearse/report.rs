@@ -21,6 +21,8 @@ pub struct LoopReport {
     /// moving optimum; `None` when the run ended outside that band.
     pub settle_time_s: Option<f64>,
     /// Mean `|J(optimum) - J(applied)|` on the noise-free static map over the last quarter.
+    /// The optimum is the best objective over the operating bounds among setpoints whose
+    /// objective is finite and inside the watchdog's plausible range.
     pub mean_loss: Option<f64>,
     /// `mean_loss` over the mean `|J(optimum)|` of the same ticks.
     pub relative_loss: Option<f64>,
