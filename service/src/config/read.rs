@@ -89,7 +89,9 @@ impl<'s> Problems<'s> {
     }
 
     pub fn into_result<T>(self, file: &str, value: Option<T>) -> Result<T, FileProblems> {
-        let problems = self.list.into_inner();
+        let mut problems = self.list.into_inner();
+        // In file order, so an engineer can walk down the file; stable for equal lines.
+        problems.sort_by_key(|p| p.line.unwrap_or((usize::MAX, 0)));
         match value {
             Some(value) if problems.is_empty() => Ok(value),
             _ => Err(FileProblems { file: file.to_owned(), problems }),
