@@ -162,8 +162,8 @@ impl Expr {
     /// Evaluates with `values[i]` bound to `names()[i]`. No allocation. If `values` is shorter
     /// than `names()`, missing values read as NaN (never panic).
     ///
-    /// Arithmetic follows IEEE 754 (`1/0` is infinite, `ln(-1)` is NaN); `min`/`max` ignore a
-    /// NaN argument and return the first argument on ties.
+    /// Arithmetic follows IEEE 754 (`1/0` is infinite, `ln(-1)` is NaN); `min`/`max` return NaN
+    /// when any argument is NaN, and the first argument on ties.
     pub fn eval(&self, values: &[f64]) -> f64 {
         if self.max_stack <= SMALL_STACK {
             run::<SMALL_STACK>(&self.code, values)
@@ -180,14 +180,16 @@ impl fmt::Display for Expr {
     }
 }
 
-// Own min/max instead of f64::min/max: those may return either zero for (-0.0, 0.0), which could
-// make results depend on inlining and constant folding.
+// Own min/max instead of f64::min/max, for two reasons: those skip a NaN argument, which would
+// hide a failed measurement from the watchdog (`max(flow_a, flow_b)` must not stay finite when one
+// flow is NaN); and they may return either zero for (-0.0, 0.0), which could make results depend on
+// inlining and constant folding.
 fn min(a: f64, b: f64) -> f64 {
-    if b < a || a.is_nan() { b } else { a }
+    if a.is_nan() || !(b.is_nan() || b < a) { a } else { b }
 }
 
 fn max(a: f64, b: f64) -> f64 {
-    if b > a || a.is_nan() { b } else { a }
+    if a.is_nan() || !(b.is_nan() || b > a) { a } else { b }
 }
 
 /// Runs a well-formed program needing at most `N` stack slots (which `parse` guarantees), so the
@@ -698,9 +700,11 @@ mod tests {
     }
 
     #[test]
-    fn min_and_max_ignore_nan_and_keep_the_first_of_equal_zeros() {
-        assert_eq!(eval("min(x, 1)", &[f64::NAN]), 1.0);
-        assert_eq!(eval("max(1, x)", &[f64::NAN]), 1.0);
+    fn min_and_max_pass_nan_on_and_keep_the_first_of_equal_zeros() {
+        // A failed measurement inside min/max must still reach the watchdog as NaN.
+        assert!(eval("min(x, 1)", &[f64::NAN]).is_nan());
+        assert!(eval("max(1, x)", &[f64::NAN]).is_nan());
+        assert!(eval("max(1, x, 2)", &[f64::NAN]).is_nan());
         assert_eq!(bits(eval("min(-0.0, 0)", &[])), bits(-0.0));
         assert_eq!(bits(eval("min(0, x)", &[-0.0])), bits(0.0));
         assert_eq!(bits(eval("max(x, 0)", &[-0.0])), bits(-0.0));
@@ -932,9 +936,25 @@ mod tests {
         }
 
         fn eval(&self, v: &[f64]) -> f64 {
-            // NaN arguments are skipped, ties keep the earlier argument.
-            let pick_min = |a: f64, b: f64| if a.is_nan() || b < a { b } else { a };
-            let pick_max = |a: f64, b: f64| if a.is_nan() || b > a { b } else { a };
+            // A NaN argument makes the result NaN; ties keep the earlier argument.
+            let pick_min = |a: f64, b: f64| {
+                if a.is_nan() {
+                    a
+                } else if b.is_nan() || b < a {
+                    b
+                } else {
+                    a
+                }
+            };
+            let pick_max = |a: f64, b: f64| {
+                if a.is_nan() {
+                    a
+                } else if b.is_nan() || b > a {
+                    b
+                } else {
+                    a
+                }
+            };
             match self {
                 Tree::Const(c) => *c,
                 Tree::Var(i) => v[*i],

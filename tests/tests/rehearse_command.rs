@@ -157,3 +157,17 @@ fn a_config_that_does_not_fit_the_plant_names_the_key() {
         run.stderr
     );
 }
+
+#[test]
+fn a_tick_that_is_not_a_whole_number_of_plant_steps_is_refused() {
+    let dir = tempfile::tempdir().unwrap();
+    let cfg = write_file(dir.path(), "c.toml", &config(&[]));
+    let plant = write_file(dir.path(), "p.toml", &CLASSIC_PLANT.replace("step_s = 0.25", "step_s = 0.4"));
+    let run = rehearse(cfg.to_str().unwrap(), plant.to_str().unwrap(), &[]);
+    assert_eq!(run.code, Some(2));
+    assert!(
+        run.stderr.contains("loops[0].tick_s: 1 s is not a whole number of the plant model's 0.4 s steps"),
+        "{}",
+        run.stderr
+    );
+}

@@ -161,8 +161,14 @@ impl Range {
 
 impl std::fmt::Display for Range {
     fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
-        write!(f, "[{}, {}]", self.min, self.max)
+        write!(f, "[{}, {}]", show(self.min), show(self.max))
     }
+}
+
+/// A number for a message: as written for ordinary magnitudes, in scientific notation
+/// beyond, so `1e300` never prints as 301 digits.
+pub fn show(v: f64) -> String {
+    if v == 0.0 || (1e-4..1e15).contains(&v.abs()) { v.to_string() } else { format!("{v:e}") }
 }
 
 impl FromToml for Range {
@@ -313,7 +319,7 @@ fn read_config(t: &Table) -> Option<Config> {
         .map(|(name, tag)| read_tag(name, tag))
         .collect();
     let loops = t.tables("loops", LOOP_KEYS);
-    if loops.is_empty() && !t.has("loops") {
+    if loops.is_empty() {
         t.problem("no [[loops]]: a config needs at least one loop");
     }
     let loops: Vec<_> = loops.iter().map(read_loop).collect();
@@ -504,7 +510,7 @@ fn read_loop(t: &Table) -> Option<LoopConfig> {
     // An optional value that is present but unreadable is already a recorded problem, so
     // reading it as absent cannot let a bad config through.
     let inputs = t.tables("inputs", INPUT_KEYS);
-    if inputs.is_empty() && !t.has("inputs") {
+    if inputs.is_empty() {
         t.problem("a loop needs at least one [[loops.inputs]]");
     }
     let inputs: Vec<_> = inputs.iter().map(read_input).collect();

@@ -4,6 +4,7 @@
 use std::collections::{HashMap, HashSet};
 
 use super::read::Problems;
+use super::show;
 use super::{Codec, Config, InputConfig, LinkKind, LoopConfig, MethodKind, Recover, RegisterType, TagSource};
 
 pub(super) fn validate(config: &Config, p: &Problems) {
@@ -34,6 +35,9 @@ pub(super) fn validate(config: &Config, p: &Problems) {
     }
     check_write_collisions(config, p);
 }
+
+/// Shortest tick: each tick is a network round trip to the PLC.
+const MIN_TICK_S: f64 = 0.01;
 
 /// `[a-z][a-z0-9_]*`: names that expressions and CSV headers can use as they are.
 pub(crate) fn is_identifier(name: &str) -> bool {
@@ -151,9 +155,12 @@ fn validate_loop(config: &Config, l: &LoopConfig, path: &str, p: &Problems) {
             format!("method \"{}\" is not available in this version; use \"sine\"", l.method),
         );
     }
-    let tick_ok = l.tick_s > 0.0;
+    let tick_ok = l.tick_s >= MIN_TICK_S;
     if !tick_ok {
-        p.at(&format!("{path}.tick_s"), "must be greater than zero");
+        p.at(
+            &format!("{path}.tick_s"),
+            format!("must be at least {MIN_TICK_S} s: a tick reads and writes a PLC over the network"),
+        );
     }
     if let Some(permit) = &l.permit
         && config.tag(permit).is_none()
@@ -205,7 +212,7 @@ fn validate_filter(l: &LoopConfig, path: &str, tick_ok: bool, p: &Problems) {
             &format!("{path}.filter.highpass_hz"),
             format!(
                 "{} Hz is not below the dither frequency {slowest:.6} Hz; the filter would remove the dither",
-                f.highpass_hz
+                show(f.highpass_hz)
             ),
         );
     }
@@ -230,7 +237,7 @@ fn validate_watchdog(l: &LoopConfig, path: &str, p: &Problems) {
     if w.stale_after_s <= 0.0 || (l.tick_s > 0.0 && w.stale_after_s < l.tick_s) {
         p.at(
             &format!("{path}.watchdog.stale_after_s"),
-            format!("must be at least one tick ({} s)", l.tick_s),
+            format!("must be at least one tick ({} s)", show(l.tick_s)),
         );
     }
     if let Some(r) = w.objective_range
@@ -278,11 +285,11 @@ fn validate_input(config: &Config, l: &LoopConfig, input: &InputConfig, path: &s
     } else if bounds.span() < 2.0 * input.dither_amplitude {
         p.at(
             &format!("{path}.dither_amplitude"),
-            format!("a dither of ±{} does not fit in the bounds {bounds}", input.dither_amplitude),
+            format!("a dither of ±{} does not fit in the bounds {bounds}", show(input.dither_amplitude)),
         );
     }
     if limits_ok && !limits.contains(input.safe) {
-        p.at(&format!("{path}.safe"), format!("{} lies outside the limits {limits}", input.safe));
+        p.at(&format!("{path}.safe"), format!("{} lies outside the limits {limits}", show(input.safe)));
     }
     if limits_ok && let Some(why) = unencodable(&w.codec, limits) {
         p.at(&format!("{path}.write"), why);
@@ -305,7 +312,7 @@ fn validate_input(config: &Config, l: &LoopConfig, input: &InputConfig, path: &s
                 format!(
                     "{} per s is below the dither's own rate 2*pi*a/P = {dither_rate:.6} per s; \
                      lower dither_amplitude or lengthen dither_period_s",
-                    input.max_rate_per_s
+                    show(input.max_rate_per_s)
                 ),
             );
         }
@@ -314,9 +321,9 @@ fn validate_input(config: &Config, l: &LoopConfig, input: &InputConfig, path: &s
                 &format!("{path}.dither_period_s"),
                 format!(
                     "{} s is only {:.1} ticks of {} s; the dither needs at least 8 ticks per period",
-                    input.dither_period_s,
+                    show(input.dither_period_s),
                     input.dither_period_s / l.tick_s,
-                    l.tick_s
+                    show(l.tick_s)
                 ),
             );
         }
@@ -341,7 +348,10 @@ fn unencodable(codec: &Codec, limits: super::Range) -> Option<String> {
     (!bad.is_empty()).then(|| {
         format!(
             "the limits {limits} cannot be written as {} with scale {} and offset {} (raw value out of range for {:?})",
-            codec.kind, codec.scale, codec.offset, bad
+            codec.kind,
+            show(codec.scale),
+            show(codec.offset),
+            bad
         )
     })
 }
@@ -425,7 +435,7 @@ fn check_dither_frequencies(l: &LoopConfig, path: &str, p: &Problems) {
 
 /// Two inputs writing overlapping registers on one link would fight each other.
 fn check_write_collisions(config: &Config, p: &Problems) {
-    let mut owners: HashMap<(&str, u16), String> = HashMap::new();
+    let mut owners: HashMap<(&str, u32), String> = HashMap::new();
     for (li, l) in config.loops.iter().enumerate() {
         let mut claims: Vec<(String, &str, u16, u16)> = l
             .inputs
@@ -444,13 +454,14 @@ fn check_write_collisions(config: &Config, p: &Problems) {
             claims.push((format!("loops[{li}].heartbeat"), hb.link.as_str(), hb.holding_register, 1));
         }
         for (path, link, start, width) in claims {
-            for reg in start..start.saturating_add(width) {
-                if let Some(owner) = owners.get(&(link, reg)) {
-                    p.at(&path, format!("register {reg} on link `{link}` is already written by {owner}"));
-                    break;
-                }
+            let registers = u32::from(start)..u32::from(start) + u32::from(width);
+            if let Some(reg) = registers.clone().find(|reg| owners.contains_key(&(link, *reg))) {
+                p.at(
+                    &path,
+                    format!("register {reg} on link `{link}` is already written by {}", owners[&(link, reg)]),
+                );
             }
-            for reg in start..start.saturating_add(width) {
+            for reg in registers {
                 owners.entry((link, reg)).or_insert_with(|| path.clone());
             }
         }

@@ -71,6 +71,8 @@ pub struct Rehearsal {
 
 #[derive(Debug)]
 struct LoopRun {
+    /// Position in the config's `[[loops]]`, for messages.
+    index: usize,
     config: LoopConfig,
     seeker: Seeker,
     /// Plant source of each of the objective's names, in `Expr::names` order.
@@ -78,6 +80,8 @@ struct LoopRun {
     /// Plant input index of each loop input.
     plant_inputs: Vec<usize>,
     tick: u64,
+    /// The last tick's objective was refused, so the next good one restarts the filters.
+    faulted: bool,
     tracker: OptimumTracker,
     stats: Stats,
     csv: Option<BufWriter<File>>,
@@ -125,6 +129,19 @@ impl Rehearsal {
                     found
                 })
                 .collect::<Vec<_>>();
+            let steps_per_tick = l.tick_s / plant.step_s;
+            if steps_per_tick < 0.5 || (steps_per_tick - steps_per_tick.round()).abs() > 1e-6 * steps_per_tick
+            {
+                // Reads between plant steps would break the one-tick delay the demodulation assumes.
+                problems.push(problem(
+                    format!("loops[{li}].tick_s"),
+                    format!(
+                        "{} s is not a whole number of the plant model's {} s steps; \
+                         choose a plant step_s that divides the tick",
+                        l.tick_s, plant.step_s
+                    ),
+                ));
+            }
             if sources.len() != l.objective.names().len() || plant_inputs.len() != l.inputs.len() {
                 continue;
             }
@@ -149,14 +166,16 @@ impl Rehearsal {
                 csv: None,
                 trace: None,
                 config: l.clone(),
+                index: li,
+                faulted: false,
             });
         }
         let mut seen = std::collections::HashMap::new();
-        for (li, l) in loops.iter().enumerate() {
+        for l in &loops {
             for (ii, &pi) in l.plant_inputs.iter().enumerate() {
-                if let Some(other) = seen.insert(pi, li) {
+                if let Some(other) = seen.insert(pi, l.index) {
                     problems.push(problem(
-                        format!("loops[{li}].inputs[{ii}].write"),
+                        format!("loops[{}].inputs[{ii}].write", l.index),
                         format!("drives the same plant input as loop `{}`", config.loops[other].name),
                     ));
                 }
@@ -258,8 +277,15 @@ impl LoopRun {
         }
         let measured = self.config.objective.eval(&self.tag_values);
         let acted = match check_objective(measured, self.config.watchdog.objective_range) {
-            Ok(objective) => self.seeker.step(self.tick, objective),
+            Ok(objective) => {
+                if std::mem::take(&mut self.faulted) {
+                    // Seeking resumes after a gap: the filters start again (DESIGN.md §4).
+                    self.seeker.restart();
+                }
+                self.seeker.step(self.tick, objective)
+            }
             Err(fault) => {
+                self.faulted = true;
                 self.stats.fault(t, fault, measured);
                 self.seeker.hold()
             }
@@ -297,12 +323,12 @@ impl LoopRun {
         }
         let achieved = truth.at(&self.applied);
 
-        let settled = self
-            .seeker
-            .inputs()
-            .iter()
-            .zip(&self.optimum)
-            .all(|(i, &x)| (i.estimate - x).abs() <= SETTLED_FRACTION * i.guard.bounds.span());
+        // An optimum within a dither amplitude of a bound counts as reached when the
+        // estimate is as close to it as the dither lets it be.
+        let settled = self.seeker.inputs().iter().zip(&self.optimum).all(|(i, &x)| {
+            let (lo, hi) = i.guard.estimate_range();
+            (i.estimate - x.max(lo).min(hi)).abs() <= SETTLED_FRACTION * i.guard.bounds.span()
+        });
         self.stats.note_settled(t, settled);
         if t >= (1.0 - SCORED_FRACTION) * duration {
             self.stats.scored_ticks += 1;

@@ -18,7 +18,9 @@ pub struct LoopReport {
     pub direction: &'static str,
     pub ticks: u64,
     /// First time after which every estimate stayed within 2% of its bounds span of the
-    /// moving optimum; `None` when the run ended outside that band.
+    /// moving optimum (or of the nearest point the dither lets the estimate reach, when
+    /// the optimum is within a dither amplitude of a bound); `None` when the run ended
+    /// outside that band.
     pub settle_time_s: Option<f64>,
     /// Mean `|J(optimum) - J(applied)|` on the noise-free static map over the last quarter.
     /// The optimum is the best objective over the operating bounds among setpoints whose

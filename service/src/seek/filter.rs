@@ -81,7 +81,8 @@ fn prewarp(cutoff_hz: f64, sample_hz: f64) -> f64 {
 pub fn highpass_gain_at(dither_hz: f64, cutoff_hz: f64, sample_hz: f64) -> f64 {
     let kf = prewarp(dither_hz, sample_hz);
     let kc = prewarp(cutoff_hz, sample_hz);
-    kf * kf / (kf * kf + kc * kc)
+    // Written as a ratio so that tiny frequencies do not underflow to 0/0.
+    1.0 / (1.0 + (kc / kf).powi(2))
 }
 
 #[cfg(test)]

@@ -27,9 +27,20 @@ impl InputGuard {
     /// `estimate ± amplitude` stays in the bounds, and the move is cut to `max_step`.
     /// An estimate left outside narrowed bounds walks back in at the rate limit.
     pub fn next_estimate(&self, current: f64, proposed: f64) -> Guarded {
-        let (lo, hi) = self.estimate_range();
+        self.toward(current, proposed, self.estimate_range())
+    }
+
+    /// The estimate of a tick without dither: it stays where it is, anywhere in the
+    /// bounds, and walks back into bounds that moved past it at the rate limit.
+    pub fn held_estimate(&self, current: f64) -> Guarded {
+        self.toward(current, current, (self.bounds.min, self.bounds.max))
+    }
+
+    // `max`/`min` rather than `clamp`, which panics on reversed bounds: a guard must
+    // never bring the loop down, whatever reaches it.
+    fn toward(&self, current: f64, proposed: f64, (lo, hi): (f64, f64)) -> Guarded {
         let proposed = if proposed.is_finite() { proposed } else { current };
-        let target = proposed.clamp(lo, hi);
+        let target = proposed.max(lo).min(hi);
         let at_bound = target != proposed;
         let step = target - current;
         if step.abs() > self.max_step {
@@ -51,13 +62,13 @@ impl InputGuard {
         if value.is_nan() {
             0.5 * (self.bounds.min + self.bounds.max)
         } else {
-            value.clamp(self.bounds.min, self.bounds.max)
+            value.max(self.bounds.min).min(self.bounds.max)
         }
     }
 
-    /// Where the estimate may sit: the bounds shrunk by the dither amplitude on each side
-    /// (their middle when they are too narrow for the dither).
-    fn estimate_range(&self) -> (f64, f64) {
+    /// Where the estimate may sit while dithering: the bounds shrunk by the dither
+    /// amplitude on each side (their middle when they are too narrow for the dither).
+    pub fn estimate_range(&self) -> (f64, f64) {
         let (lo, hi) = (self.bounds.min + self.amplitude, self.bounds.max - self.amplitude);
         if lo <= hi {
             (lo, hi)
@@ -102,7 +113,7 @@ pub fn check_objective(value: f64, plausible: Option<Range>) -> Result<f64, Obje
 pub fn initial_estimate(read_back: Option<f64>, bounds: Range, safe: f64) -> f64 {
     match read_back {
         Some(v) if v.is_finite() && bounds.contains(v) => v,
-        _ => safe.clamp(bounds.min, bounds.max),
+        _ => safe.max(bounds.min).min(bounds.max),
     }
 }
 
@@ -133,6 +144,15 @@ mod tests {
         let g = guard().next_estimate(2.5, 2.5);
         assert!((g.value - 2.45).abs() < 1e-15);
         assert!(g.at_bound && g.rate_limited);
+    }
+
+    #[test]
+    fn holding_keeps_an_estimate_near_a_bound_where_it_is() {
+        let g = guard().held_estimate(1.95);
+        assert_eq!(g.value, 1.95);
+        assert!(!g.at_bound && !g.rate_limited);
+        let outside = guard().held_estimate(2.5);
+        assert!((outside.value - 2.45).abs() < 1e-15 && outside.rate_limited);
     }
 
     #[test]

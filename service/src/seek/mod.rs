@@ -108,13 +108,14 @@ impl Seeker {
     }
 
     /// A tick without seeking: the estimate stays (walking into the bounds if they moved)
-    /// and is applied without dither.
+    /// and is applied without dither; no gradient is estimated.
     pub fn hold(&mut self) -> GuardActions {
         let mut acted = GuardActions::default();
         for input in &mut self.inputs {
-            let estimate = input.guard.next_estimate(input.estimate, input.estimate);
+            let estimate = input.guard.held_estimate(input.estimate);
             input.estimate = estimate.value;
             input.applied = input.guard.clamp(estimate.value);
+            input.gradient = 0.0;
             note(&mut acted, estimate);
         }
         acted

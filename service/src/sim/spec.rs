@@ -60,6 +60,9 @@ pub struct PlantOutput {
 /// The name expressions use for simulated time in seconds.
 pub const TIME: &str = "t_s";
 
+/// Shortest integration step; finer steps only slow a rehearsal down.
+const MIN_STEP_S: f64 = 0.001;
+
 /// Most dead-time steps a model may hold in memory.
 const MAX_DELAY_STEPS: f64 = 10_000_000.0;
 
@@ -137,7 +140,7 @@ fn read_spec(t: &Table) -> Option<PlantSpec> {
         .collect();
     let outputs =
         t.tables("outputs", &["name", "input_register", "expression", "lag_s", "dead_time_s", "noise_std"]);
-    if outputs.is_empty() && !t.has("outputs") {
+    if outputs.is_empty() {
         t.problem("a plant needs at least one [[outputs]]");
     }
     let outputs: Vec<_> = outputs
@@ -171,8 +174,8 @@ fn read_spec(t: &Table) -> Option<PlantSpec> {
 }
 
 fn validate(spec: &PlantSpec, p: &Problems) {
-    if spec.step_s <= 0.0 {
-        p.at("step_s", "must be greater than zero");
+    if spec.step_s < MIN_STEP_S {
+        p.at("step_s", format!("must be at least {MIN_STEP_S} s"));
     }
     let mut names = HashSet::new();
     let all_names = spec
