@@ -260,31 +260,19 @@ impl Config {
 
 /// Reads and validates a config file.
 pub fn load(path: &Path) -> Result<Config, FileProblems> {
-    let file = path.display().to_string();
-    match std::fs::read_to_string(path) {
-        Ok(text) => parse(&text, &file),
-        Err(e) => Err(FileProblems {
-            file,
-            problems: vec![Problem {
-                path: String::new(),
-                line: None,
-                message: format!("cannot read the file: {e}"),
-            }],
-        }),
-    }
+    let (text, file) = read::read_file(path)?;
+    parse(&text, &file)
 }
 
 /// Parses and validates config text; `file` names it in problems.
 pub fn parse(text: &str, file: &str) -> Result<Config, FileProblems> {
-    let problems = Problems::new(text);
-    let config = read::parse_document(text, &problems).and_then(|doc| {
-        let root = Table::root(&doc, &problems, &["service", "access", "links", "tags", "loops"]);
-        read_config(&root)
-    });
-    if let Some(config) = &config {
-        validate::validate(config, &problems);
-    }
-    problems.into_result(file, config)
+    read::document(
+        text,
+        file,
+        &["service", "access", "links", "tags", "loops"],
+        read_config,
+        validate::validate,
+    )
 }
 
 fn read_config(t: &Table) -> Option<Config> {

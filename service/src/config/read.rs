@@ -116,6 +116,41 @@ fn floor_char_boundary(text: &str, mut offset: usize) -> usize {
     offset
 }
 
+/// Reads a file's text, or the one problem of not being able to; also returns the name
+/// problems use for the file.
+pub fn read_file(path: &std::path::Path) -> Result<(String, String), FileProblems> {
+    let file = path.display().to_string();
+    match std::fs::read_to_string(path) {
+        Ok(text) => Ok((text, file)),
+        Err(e) => Err(FileProblems {
+            file,
+            problems: vec![Problem {
+                path: String::new(),
+                line: None,
+                message: format!("cannot read the file: {e}"),
+            }],
+        }),
+    }
+}
+
+/// Reads a whole document: syntax, then `read` from the root table (which accepts the
+/// `root_keys`), then `validate` on what was read, with every problem collected.
+pub fn document<T>(
+    text: &str,
+    file: &str,
+    root_keys: &[&str],
+    read: impl FnOnce(&Table) -> Option<T>,
+    validate: impl FnOnce(&T, &Problems),
+) -> Result<T, FileProblems> {
+    let problems = Problems::new(text);
+    let value =
+        parse_document(text, &problems).and_then(|doc| read(&Table::root(&doc, &problems, root_keys)));
+    if let Some(value) = &value {
+        validate(value, &problems);
+    }
+    problems.into_result(file, value)
+}
+
 /// Parses TOML text, recording every syntax error; `None` when there was any.
 pub fn parse_document<'i>(text: &'i str, problems: &Problems<'_>) -> Option<Spanned<DeTable<'i>>> {
     let (doc, errors) = DeTable::parse_recoverable(text);

@@ -3,7 +3,7 @@
 use std::collections::HashSet;
 use std::path::Path;
 
-use crate::config::read::{self, FileProblems, Problem, Problems, Table};
+use crate::config::read::{self, FileProblems, Problems, Table};
 use crate::expr::Expr;
 
 /// A validated plant model.
@@ -83,31 +83,13 @@ impl PlantSpec {
 
 /// Reads and validates a plant-model file.
 pub fn load(path: &Path) -> Result<PlantSpec, FileProblems> {
-    let file = path.display().to_string();
-    match std::fs::read_to_string(path) {
-        Ok(text) => parse(&text, &file),
-        Err(e) => Err(FileProblems {
-            file,
-            problems: vec![Problem {
-                path: String::new(),
-                line: None,
-                message: format!("cannot read the file: {e}"),
-            }],
-        }),
-    }
+    let (text, file) = read::read_file(path)?;
+    parse(&text, &file)
 }
 
 /// Parses and validates plant-model text; `file` names it in problems.
 pub fn parse(text: &str, file: &str) -> Result<PlantSpec, FileProblems> {
-    let problems = Problems::new(text);
-    let spec = read::parse_document(text, &problems).and_then(|doc| {
-        let t = Table::root(&doc, &problems, &["step_s", "seed", "inputs", "drifts", "outputs"]);
-        read_spec(&t)
-    });
-    if let Some(spec) = &spec {
-        validate(spec, &problems);
-    }
-    problems.into_result(file, spec)
+    read::document(text, file, &["step_s", "seed", "inputs", "drifts", "outputs"], read_spec, validate)
 }
 
 fn read_spec(t: &Table) -> Option<PlantSpec> {
