@@ -332,7 +332,9 @@ fn tick_formatter(range: (f64, f64), max_ticks: usize) -> impl Fn(&f64) -> Strin
     let step = nice_step(span, max_ticks);
     let magnitude = range.0.abs().max(range.1.abs());
     let scientific = !(1e-3..1e6).contains(&magnitude);
-    let decimals = decimals_for(step);
+    // Plotters may settle on a finer step than the one recomputed here (0.5 where this
+    // gives 1), so the decimals come from the finer of the candidate steps.
+    let decimals = decimals_for(nice_step(span, 2 * max_ticks + 1));
     let sig = if magnitude > 0.0 {
         let digits = (magnitude.log10().floor() - step.log10().floor()).max(0.0);
         (digits as usize).min(8)
@@ -342,7 +344,13 @@ fn tick_formatter(range: (f64, f64), max_ticks: usize) -> impl Fn(&f64) -> Strin
     move |v: &f64| {
         // Rounding noise around zero would otherwise print as "-0.0" or "1e-17".
         let v = if v.abs() < step * 1e-6 { 0.0 } else { *v };
-        if scientific && v != 0.0 { format!("{v:.sig$e}") } else { format!("{v:.decimals$}") }
+        if scientific && v != 0.0 {
+            format!("{v:.sig$e}")
+        } else {
+            // Trailing zeros go, so a label never shows more decimals than it has.
+            let text = format!("{v:.decimals$}");
+            if text.contains('.') { text.trim_end_matches('0').trim_end_matches('.').to_owned() } else { text }
+        }
     }
 }
 
@@ -667,6 +675,9 @@ mod tests {
         assert_eq!(f(&2.0), "2");
         let f = tick_formatter((0.0, 3.0), 12);
         assert_eq!(f(&1.5), "1.5");
+        // A range plotters splits into half steps keeps its halves.
+        let f = tick_formatter((85.5, 87.0), 6);
+        assert_eq!(f(&86.5), "86.5");
         let f = tick_formatter((-1.0, 1000.0), 6);
         assert_eq!(f(&200.0), "200");
         assert_eq!(f(&-1e-17), "0");
