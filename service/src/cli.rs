@@ -2,13 +2,15 @@
 //! service. Exit codes: 0 success, 2 invalid config or arguments, 1 runtime failure.
 
 use std::io::IsTerminal;
+use std::net::SocketAddr;
 use std::path::{Path, PathBuf};
 use std::process::ExitCode;
 use std::time::{Duration, Instant};
 
+use anyhow::Context;
 use clap::{Parser, Subcommand};
 
-use crate::config::{self, FileProblems};
+use crate::config::{self, FileProblems, LogFormat};
 use crate::rehearse::{self, Options, Rehearsal};
 use crate::sim;
 
@@ -25,6 +27,33 @@ pub struct Cli {
 
 #[derive(Debug, Subcommand)]
 pub enum Command {
+    /// Run the built-in demo: a simulated plant and the full service against it.
+    Demo {
+        /// Address of the API (default: the demo config's, 127.0.0.1:8080).
+        #[arg(long, value_name = "ADDR")]
+        listen: Option<SocketAddr>,
+        /// Stop by itself after this many minutes of wall time.
+        #[arg(long, value_name = "N", value_parser = parse_positive)]
+        minutes: Option<f64>,
+        /// Run plant and loops this many times faster than real time.
+        #[arg(long, value_name = "X", default_value_t = crate::demo::DEFAULT_SPEED, value_parser = parse_positive)]
+        speed: f64,
+    },
+    /// Run the service: every configured loop against the plant, until SIGINT or SIGTERM.
+    Run {
+        #[arg(long, value_name = "FILE")]
+        config: PathBuf,
+    },
+    /// Serve a plant model over Modbus/TCP until stopped.
+    Sim {
+        #[arg(long, value_name = "FILE")]
+        plant: PathBuf,
+        #[arg(long, value_name = "ADDR", default_value = "127.0.0.1:5020")]
+        listen: SocketAddr,
+        /// Run the plant this many times faster than real time.
+        #[arg(long, value_name = "X", default_value_t = 1.0, value_parser = parse_positive)]
+        speed: f64,
+    },
     /// Validate a config file: print every problem, or a summary of each loop.
     Check {
         #[arg(long, value_name = "FILE")]
@@ -58,6 +87,9 @@ const FAILED: u8 = 1;
 
 pub fn run(cli: Cli) -> ExitCode {
     match cli.command {
+        Command::Demo { listen, minutes, speed } => demo(crate::demo::Options { listen, speed, minutes }),
+        Command::Run { config } => serve(&config),
+        Command::Sim { plant, listen, speed } => simulate(&plant, listen, speed),
         Command::Check { config } => check(&config),
         Command::Rehearse { config, plant, duration, plot, csv, json } => rehearse(
             &config,
@@ -152,6 +184,112 @@ fn rehearse(
         }
     }
     ExitCode::SUCCESS
+}
+
+/// Runs an async command on a runtime of its own; a failure is one sentence and exit 1.
+fn block_on(work: impl std::future::Future<Output = anyhow::Result<()>>) -> ExitCode {
+    let runtime = match tokio::runtime::Builder::new_multi_thread().enable_all().build() {
+        Ok(r) => r,
+        Err(e) => {
+            eprintln!("cannot start the async runtime: {e}");
+            return ExitCode::from(FAILED);
+        }
+    };
+    match runtime.block_on(work) {
+        Ok(()) => ExitCode::SUCCESS,
+        Err(e) => {
+            tracing::error!(error = %format!("{e:#}"), "stopped by an error");
+            eprintln!("ridgeline: {e:#}");
+            ExitCode::from(FAILED)
+        }
+    }
+}
+
+/// Logs to stderr, text or JSON; `RUST_LOG` overrides the default level.
+fn init_logging(format: LogFormat, default: &str) {
+    let filter = tracing_subscriber::EnvFilter::try_from_default_env()
+        .unwrap_or_else(|_| tracing_subscriber::EnvFilter::new(default));
+    let builder = tracing_subscriber::fmt().with_env_filter(filter).with_writer(std::io::stderr);
+    let _ = match format {
+        LogFormat::Text => builder.try_init(),
+        LogFormat::Json => builder.json().try_init(),
+    };
+}
+
+/// Completes on SIGINT or SIGTERM (what systemd sends to stop a service).
+pub async fn stop_signal() {
+    let interrupt = tokio::signal::ctrl_c();
+    #[cfg(unix)]
+    {
+        use tokio::signal::unix::{SignalKind, signal};
+        match signal(SignalKind::terminate()) {
+            Ok(mut term) => {
+                tokio::select! {
+                    _ = interrupt => {},
+                    _ = term.recv() => {},
+                }
+            }
+            Err(_) => {
+                let _ = interrupt.await;
+            }
+        }
+    }
+    #[cfg(not(unix))]
+    let _ = interrupt.await;
+}
+
+fn serve(path: &Path) -> ExitCode {
+    let config = match config::load(path) {
+        Ok(c) => c,
+        Err(problems) => return report_problems(&problems),
+    };
+    init_logging(config.service.log_format, "info");
+    block_on(async move {
+        let app = crate::app::App::build(&config, &crate::app::Options::default()).await?;
+        tracing::info!(
+            config = %path.display(),
+            api = %app.local_addr()?,
+            loops = config.loops.len(),
+            "ridgeline running"
+        );
+        app.run_until(stop_signal()).await?;
+        tracing::info!("stopped");
+        Ok(())
+    })
+}
+
+fn simulate(path: &Path, listen: SocketAddr, speed: f64) -> ExitCode {
+    let spec = match sim::load(path) {
+        Ok(s) => s,
+        Err(problems) => return report_problems(&problems),
+    };
+    init_logging(LogFormat::Text, "info");
+    block_on(async move {
+        let server = crate::sim::server::PlantServer::bind(&spec, listen, speed)
+            .await
+            .with_context(|| format!("cannot listen on {listen}"))?;
+        println!(
+            "serving {} over Modbus/TCP on {} ({speed}x real time); Ctrl-C stops",
+            path.display(),
+            server.local_addr()?
+        );
+        server.run_until(stop_signal()).await?;
+        Ok(())
+    })
+}
+
+fn demo(options: crate::demo::Options) -> ExitCode {
+    // The progress lines are the demo's output; logs show only what went wrong.
+    init_logging(LogFormat::Text, "warn");
+    block_on(async move { crate::demo::run(&options, stop_signal()).await })
+}
+
+/// A positive, finite number (speeds, minutes).
+fn parse_positive(text: &str) -> Result<f64, String> {
+    match text.parse::<f64>() {
+        Ok(v) if v.is_finite() && v > 0.0 => Ok(v),
+        _ => Err(format!("`{text}` must be a positive number")),
+    }
 }
 
 /// A progress bar on stderr, shown only for runs that last more than a second and only

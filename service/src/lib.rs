@@ -5,19 +5,31 @@
 //! that into the setpoints, within operating bounds and rate limits.
 //!
 //! Where things are:
+//! - [`app`]: the running service, links, loops and API started and stopped together.
+//! - [`api`]: the HTTP API; one error type maps failures to status and JSON.
 //! - [`cli`]: the command line; parses arguments and hands over. `main.rs` only calls it.
+//! - [`demo`]: the built-in scenario: simulated plant, full service, progress lines.
 //! - [`config`]: the service config file: typed structs, reading with every problem
 //!   reported by key path and line, validation rules, and the `check` summary.
 //! - [`expr`]: arithmetic expressions for objectives and plant outputs, parsed once.
+//! - [`field`]: links to the plant (Modbus/TCP, HTTP), the register codec, and each
+//!   loop's plan of reads and writes. The only place that talks to the plant.
 //! - [`seek`]: the optimizer core: filters, the sine method, bounds and rate limits.
 //!   Pure and synchronous; time is the tick index.
 //! - [`sim`]: plant models: the plant-model file and a deterministic stepped model.
+//! - [`supervisor`]: the live loops: one task per loop on its tick, and the pure
+//!   per-tick decisions (`control`) that the rehearsal shares.
 //! - [`rehearse`]: offline runs of configured loops against a plant model, scored
 //!   against the true optimum, with report, CSV and SVG plot.
 
+pub mod api;
+pub mod app;
 pub mod cli;
 pub mod config;
+pub mod demo;
 pub mod expr;
+pub mod field;
 pub mod rehearse;
 pub mod seek;
 pub mod sim;
+pub mod supervisor;

@@ -11,6 +11,7 @@
 pub mod optimum;
 pub mod plot;
 mod report;
+mod truth;
 
 use std::fs::File;
 use std::io::{BufWriter, Write};
@@ -18,14 +19,13 @@ use std::path::{Path, PathBuf};
 
 use anyhow::Context;
 
-use crate::config::{Config, Direction, FileProblems, LoopConfig, Problem, Range, RegisterSpace, TagSource};
-use crate::expr::Expr;
-use crate::seek::Seeker;
-use crate::seek::guard::{ObjectiveFault, check_objective, initial_estimate};
-use crate::sim::{Plant, PlantSpec, StaticMap};
-use optimum::OptimumTracker;
+use crate::config::{Config, FileProblems, LoopConfig, Mode, Problem, Range};
+use crate::seek::guard::ObjectiveFault;
+use crate::sim::{Plant, PlantSpec};
+use crate::supervisor::control::Control;
 use plot::{InputTrace, LoopTrace};
 pub use report::{Event, FinalInput, LoopReport, Report, human_duration};
+pub use truth::Truth;
 
 /// An estimate counts as settled within this fraction of its bounds span of the optimum.
 const SETTLED_FRACTION: f64 = 0.02;
@@ -54,135 +54,88 @@ pub struct Outcome {
     pub traces: Vec<LoopTrace>,
 }
 
-/// Where a tag's value comes from in the plant.
-#[derive(Debug, Clone, Copy)]
-enum Source {
-    Output(usize),
-    Input(usize),
-}
-
 /// A configured loop wired to a plant model, ready to run.
 #[derive(Debug)]
 pub struct Rehearsal {
     plant: Plant,
-    map: StaticMap,
     loops: Vec<LoopRun>,
 }
 
 #[derive(Debug)]
 struct LoopRun {
-    /// Position in the config's `[[loops]]`, for messages.
-    index: usize,
     config: LoopConfig,
-    seeker: Seeker,
-    /// Plant source of each of the objective's names, in `Expr::names` order.
-    sources: Vec<Source>,
-    /// Plant input index of each loop input.
-    plant_inputs: Vec<usize>,
+    /// The same decisions as the live loop, always seeking.
+    control: Control,
+    truth: Truth,
     tick: u64,
-    /// The last tick's objective was refused, so the next good one restarts the filters.
-    faulted: bool,
-    tracker: OptimumTracker,
     stats: Stats,
     csv: Option<BufWriter<File>>,
     trace: Option<TraceRecorder>,
     // Reused every tick so the hot path does not allocate.
     tag_values: Vec<f64>,
-    point: Vec<f64>,
     bounds: Vec<Range>,
-    optimum: Vec<f64>,
     applied: Vec<f64>,
+    optimum: Vec<f64>,
 }
 
 impl Rehearsal {
     /// Wires every loop of `config` to `plant`; problems name the config's key paths.
     pub fn new(config: &Config, plant: &PlantSpec, config_file: &str) -> Result<Self, FileProblems> {
         let mut problems = Vec::new();
-        let mut loops = Vec::new();
+        let mut loops: Vec<LoopRun> = Vec::new();
         let model = Plant::new(plant);
         for (li, l) in config.loops.iter().enumerate() {
-            let sources = l
-                .objective
-                .names()
-                .iter()
-                .filter_map(|name| match tag_source(config, plant, name) {
-                    Ok(s) => Some(s),
-                    Err(why) => {
-                        problems.push(problem(format!("tags.{name}"), why));
-                        None
-                    }
-                })
-                .collect::<Vec<_>>();
-            let plant_inputs = l
-                .inputs
-                .iter()
-                .enumerate()
-                .filter_map(|(ii, input)| {
-                    let register = input.write.holding_register;
-                    let found = plant.input_at_holding(register);
-                    if found.is_none() {
-                        problems.push(problem(
-                            format!("loops[{li}].inputs[{ii}].write.holding_register"),
-                            format!("the plant model serves no input at holding register {register}"),
-                        ));
-                    }
-                    found
-                })
-                .collect::<Vec<_>>();
             let steps_per_tick = l.tick_s / plant.step_s;
             if steps_per_tick < 0.5 || (steps_per_tick - steps_per_tick.round()).abs() > 1e-6 * steps_per_tick
             {
                 // Reads between plant steps would break the one-tick delay the demodulation assumes.
-                problems.push(problem(
-                    format!("loops[{li}].tick_s"),
-                    format!(
+                problems.push(Problem {
+                    path: format!("loops[{li}].tick_s"),
+                    line: None,
+                    message: format!(
                         "{} s is not a whole number of the plant model's {} s steps; \
                          choose a plant step_s that divides the tick",
                         l.tick_s, plant.step_s
                     ),
-                ));
+                });
             }
-            if sources.len() != l.objective.names().len() || plant_inputs.len() != l.inputs.len() {
-                continue;
+            let truth = match Truth::new(config, li, plant) {
+                Ok(t) => t,
+                Err(p) => {
+                    problems.extend(p);
+                    continue;
+                }
+            };
+            for (ii, &pi) in truth.plant_inputs().iter().enumerate() {
+                if let Some(other) = loops.iter().find(|o| o.truth.plant_inputs().contains(&pi)) {
+                    problems.push(Problem {
+                        path: format!("loops[{li}].inputs[{ii}].write"),
+                        line: None,
+                        message: format!("drives the same plant input as loop `{}`", other.config.name),
+                    });
+                }
             }
-            let estimates: Vec<f64> = l
-                .inputs
-                .iter()
-                .zip(&plant_inputs)
-                .map(|(input, &pi)| initial_estimate(Some(model.inputs()[pi]), input.bounds, input.safe))
-                .collect();
+            let read_back: Vec<Option<f64>> =
+                truth.plant_inputs().iter().map(|&pi| Some(model.inputs()[pi])).collect();
+            let mut control = Control::new(l);
+            control.set_mode(Mode::Seeking, &read_back);
+            control.start(&read_back);
             loops.push(LoopRun {
-                seeker: Seeker::for_loop(l, &estimates),
-                tracker: OptimumTracker::new(sign(l.direction), l.inputs.len()),
-                tag_values: vec![0.0; sources.len()],
-                point: vec![0.0; plant.inputs.len()],
-                bounds: l.inputs.iter().map(|i| i.bounds).collect(),
-                optimum: vec![0.0; l.inputs.len()],
-                applied: vec![0.0; l.inputs.len()],
-                sources,
-                plant_inputs,
+                config: l.clone(),
+                control,
+                truth,
                 tick: 0,
                 stats: Stats::default(),
                 csv: None,
                 trace: None,
-                config: l.clone(),
-                index: li,
-                faulted: false,
+                tag_values: vec![0.0; l.objective.names().len()],
+                bounds: l.inputs.iter().map(|i| i.bounds).collect(),
+                applied: vec![0.0; l.inputs.len()],
+                optimum: vec![0.0; l.inputs.len()],
             });
         }
-        let mut seen = std::collections::HashMap::new();
-        for l in &loops {
-            for (ii, &pi) in l.plant_inputs.iter().enumerate() {
-                if let Some(other) = seen.insert(pi, l.index) {
-                    problems.push(problem(
-                        format!("loops[{}].inputs[{ii}].write", l.index),
-                        format!("drives the same plant input as loop `{}`", config.loops[other].name),
-                    ));
-                }
-            }
-        }
         if problems.is_empty() {
-            Ok(Rehearsal { map: StaticMap::new(plant), plant: model, loops })
+            Ok(Rehearsal { plant: model, loops })
         } else {
             Err(FileProblems { file: config_file.to_owned(), problems })
         }
@@ -209,7 +162,7 @@ impl Rehearsal {
             self.plant.advance_to(next);
             for l in &mut self.loops {
                 if l.next_time() <= next {
-                    l.tick(next, duration, &mut self.plant, &mut self.map)?;
+                    l.tick(next, duration, &mut self.plant)?;
                 }
             }
             if next - last_reported >= duration / 200.0 {
@@ -231,101 +184,38 @@ impl Rehearsal {
     }
 }
 
-fn problem(path: String, message: String) -> Problem {
-    Problem { path, line: None, message }
-}
-
-fn sign(direction: Direction) -> f64 {
-    match direction {
-        Direction::Maximize => 1.0,
-        Direction::Minimize => -1.0,
-    }
-}
-
-fn tag_source(config: &Config, plant: &PlantSpec, name: &str) -> Result<Source, String> {
-    let Some(tag) = config.tag(name) else {
-        return Err("is not defined".into());
-    };
-    match &tag.source {
-        TagSource::Register { space: RegisterSpace::Input, address, .. } => plant
-            .output_at_input_register(*address)
-            .map(Source::Output)
-            .ok_or_else(|| format!("the plant model serves no output at input register {address}")),
-        TagSource::Register { space: RegisterSpace::Holding, address, .. } => plant
-            .input_at_holding(*address)
-            .map(Source::Input)
-            .ok_or_else(|| format!("the plant model serves no input at holding register {address}")),
-        TagSource::JsonPointer(_) => plant.output(name).map(Source::Output).ok_or_else(|| {
-            format!(
-                "an HTTP tag reads the plant output of the same name, and the plant has no output `{name}`"
-            )
-        }),
-    }
-}
-
 impl LoopRun {
     fn next_time(&self) -> f64 {
         self.tick as f64 * self.config.tick_s
     }
 
-    fn tick(&mut self, t: f64, duration: f64, plant: &mut Plant, map: &mut StaticMap) -> anyhow::Result<()> {
-        for (value, source) in self.tag_values.iter_mut().zip(&self.sources) {
-            *value = match *source {
-                Source::Output(k) => plant.output(k),
-                Source::Input(i) => plant.inputs()[i],
-            };
+    fn tick(&mut self, t: f64, duration: f64, plant: &mut Plant) -> anyhow::Result<()> {
+        self.truth.read_tags(plant, &mut self.tag_values);
+        let report = self.control.tick(self.tick, Some(&self.tag_values));
+        let measured = report.objective.unwrap_or(f64::NAN);
+        if let Some(fault) = report.fault {
+            self.stats.fault(t, fault, measured);
         }
-        let measured = self.config.objective.eval(&self.tag_values);
-        let acted = match check_objective(measured, self.config.watchdog.objective_range) {
-            Ok(objective) => {
-                if std::mem::take(&mut self.faulted) {
-                    // Seeking resumes after a gap: the filters start again (DESIGN.md §4).
-                    self.seeker.restart();
-                }
-                self.seeker.step(self.tick, objective)
+        if report.write {
+            for (input, &pi) in self.control.inputs().iter().zip(self.truth.plant_inputs()) {
+                plant.set_input(pi, input.applied);
             }
-            Err(fault) => {
-                self.faulted = true;
-                self.stats.fault(t, fault, measured);
-                self.seeker.hold()
-            }
-        };
-        for (input, &pi) in self.seeker.inputs().iter().zip(&self.plant_inputs) {
-            plant.set_input(pi, input.applied);
         }
-        self.stats.bound_hits += u64::from(acted.at_bound);
-        self.stats.rate_limited_ticks += u64::from(acted.rate_limited);
+        self.stats.bound_hits += u64::from(report.guard.at_bound);
+        self.stats.rate_limited_ticks += u64::from(report.guard.rate_limited);
 
         // Score against the plant's true optimum at this moment.
-        map.set_time(t);
-        for (b, input) in self.bounds.iter_mut().zip(self.seeker.inputs()) {
+        for ((b, a), input) in self.bounds.iter_mut().zip(&mut self.applied).zip(self.control.inputs()) {
             *b = input.guard.bounds;
-        }
-        let mut truth = TrueObjective {
-            map,
-            objective: &self.config.objective,
-            sources: &self.sources,
-            plant_inputs: &self.plant_inputs,
-            point: &mut self.point,
-            tag_values: &mut self.tag_values,
-        };
-        truth.point.copy_from_slice(plant.inputs());
-        // Setpoints whose objective the watchdog would call implausible are not achievable.
-        let plausible = self.config.watchdog.objective_range;
-        let mut feasible = |u: &[f64]| {
-            let j = truth.at(u);
-            if check_objective(j, plausible).is_ok() { j } else { f64::NAN }
-        };
-        self.optimum.copy_from_slice(self.tracker.find(&self.bounds, &mut feasible));
-        let best = truth.at(&self.optimum);
-        for (a, input) in self.applied.iter_mut().zip(self.seeker.inputs()) {
             *a = input.applied;
         }
-        let achieved = truth.at(&self.applied);
+        let (best, optimum) = self.truth.optimum(t, plant.inputs(), &self.bounds);
+        self.optimum.copy_from_slice(optimum);
+        let achieved = self.truth.objective_at(&self.applied);
 
         // An optimum within a dither amplitude of a bound counts as reached when the
         // estimate is as close to it as the dither lets it be.
-        let settled = self.seeker.inputs().iter().zip(&self.optimum).all(|(i, &x)| {
+        let settled = self.control.inputs().iter().zip(&self.optimum).all(|(i, &x)| {
             let (lo, hi) = i.guard.estimate_range();
             (i.estimate - x.max(lo).min(hi)).abs() <= SETTLED_FRACTION * i.guard.bounds.span()
         });
@@ -343,11 +233,11 @@ impl LoopRun {
 
     fn record(&mut self, t: f64, measured: f64, best: f64) -> anyhow::Result<()> {
         if let Some(csv) = &mut self.csv {
-            write_row(csv, t, measured, best, self.seeker.inputs(), &self.optimum)
+            write_row(csv, t, measured, best, self.control.inputs(), &self.optimum)
                 .with_context(|| format!("could not write the CSV file of loop {}", self.config.name))?;
         }
         if let Some(trace) = &mut self.trace {
-            trace.push(t, measured, best, self.seeker.inputs(), &self.optimum);
+            trace.push(t, measured, best, self.control.inputs(), &self.optimum);
         }
         Ok(())
     }
@@ -371,37 +261,11 @@ impl LoopRun {
                 .config
                 .inputs
                 .iter()
-                .zip(self.seeker.inputs())
+                .zip(self.control.inputs())
                 .zip(&self.optimum)
                 .map(|((c, i), &x)| FinalInput { name: c.name.clone(), estimate: i.estimate, optimum: x })
                 .collect(),
         }
-    }
-}
-
-/// The loop's objective on the plant's noise-free static map, as a function of the
-/// loop's inputs with every other plant input as it is.
-struct TrueObjective<'a> {
-    map: &'a mut StaticMap,
-    objective: &'a Expr,
-    sources: &'a [Source],
-    plant_inputs: &'a [usize],
-    point: &'a mut [f64],
-    tag_values: &'a mut [f64],
-}
-
-impl TrueObjective<'_> {
-    fn at(&mut self, inputs: &[f64]) -> f64 {
-        for (&pi, &v) in self.plant_inputs.iter().zip(inputs) {
-            self.point[pi] = v;
-        }
-        for (value, source) in self.tag_values.iter_mut().zip(self.sources) {
-            *value = match *source {
-                Source::Output(k) => self.map.output(k, self.point),
-                Source::Input(i) => self.point[i],
-            };
-        }
-        self.objective.eval(self.tag_values)
     }
 }
 

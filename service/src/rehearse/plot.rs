@@ -349,7 +349,11 @@ fn tick_formatter(range: (f64, f64), max_ticks: usize) -> impl Fn(&f64) -> Strin
         } else {
             // Trailing zeros go, so a label never shows more decimals than it has.
             let text = format!("{v:.decimals$}");
-            if text.contains('.') { text.trim_end_matches('0').trim_end_matches('.').to_owned() } else { text }
+            if text.contains('.') {
+                text.trim_end_matches('0').trim_end_matches('.').to_owned()
+            } else {
+                text
+            }
         }
     }
 }

@@ -121,6 +121,16 @@ impl Seeker {
         acted
     }
 
+    /// Sets the estimates (clamped into the bounds) and applies them without dither, as
+    /// when a loop starts from the setpoints read back from the PLC.
+    pub fn reset_estimates(&mut self, estimates: &[f64]) {
+        for (input, &e) in self.inputs.iter_mut().zip(estimates) {
+            input.estimate = input.guard.clamp(e);
+            input.applied = input.estimate;
+            input.gradient = 0.0;
+        }
+    }
+
     /// Restarts the method's filters; the estimates stay.
     pub fn restart(&mut self) {
         self.method.restart();

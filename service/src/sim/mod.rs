@@ -1,7 +1,8 @@
-//! Simulated plants: the plant-model file and a deterministic model stepped in time.
-//! The model is pure; serving it over Modbus/TCP is a separate concern.
+//! Simulated plants: the plant-model file, a deterministic model stepped in time, and a
+//! Modbus/TCP server for it. The model is pure; only `server` does I/O.
 
 mod model;
+pub mod server;
 mod spec;
 
 pub use model::{Plant, StaticMap};

@@ -1,0 +1,82 @@
+//! An HTTP link: one GET of a JSON document per tick serves every tag on the link; tags
+//! are RFC 6901 JSON Pointers into it.
+
+use std::time::Duration;
+
+use super::error::LinkError;
+
+/// Largest document accepted; a reading endpoint that sends more is misbehaving.
+const MAX_BODY_BYTES: usize = 1 << 20;
+
+#[derive(Debug, Clone)]
+pub struct HttpLink {
+    name: String,
+    url: String,
+    client: reqwest::Client,
+}
+
+impl HttpLink {
+    pub fn new(name: &str, url: &str, timeout: Duration) -> Result<Self, LinkError> {
+        let client = reqwest::Client::builder().timeout(timeout).build().map_err(|e| LinkError::Http {
+            link: name.to_owned(),
+            url: url.to_owned(),
+            reason: e.to_string(),
+        })?;
+        Ok(HttpLink { name: name.to_owned(), url: url.to_owned(), client })
+    }
+
+    pub fn name(&self) -> &str {
+        &self.name
+    }
+
+    /// Fetches the document once.
+    #[tracing::instrument(level = "trace", skip_all, fields(link = %self.name))]
+    pub async fn fetch(&self) -> Result<serde_json::Value, LinkError> {
+        let http =
+            |reason: String| LinkError::Http { link: self.name.clone(), url: self.url.clone(), reason };
+        let response = self.client.get(&self.url).send().await.map_err(|e| http(describe(&e)))?;
+        let status = response.status();
+        if !status.is_success() {
+            return Err(LinkError::HttpStatus {
+                link: self.name.clone(),
+                url: self.url.clone(),
+                status: status.as_u16(),
+            });
+        }
+        if response.content_length().is_some_and(|n| n > MAX_BODY_BYTES as u64) {
+            return Err(http(format!("the document is larger than {MAX_BODY_BYTES} bytes")));
+        }
+        let body = response.bytes().await.map_err(|e| http(describe(&e)))?;
+        if body.len() > MAX_BODY_BYTES {
+            return Err(http(format!("the document is larger than {MAX_BODY_BYTES} bytes")));
+        }
+        serde_json::from_slice(&body).map_err(|e| http(format!("the answer is not JSON: {e}")))
+    }
+
+    /// The number at `pointer` in a fetched document.
+    pub fn number(&self, document: &serde_json::Value, tag: &str, pointer: &str) -> Result<f64, LinkError> {
+        let not = |found: String| LinkError::NotNumeric {
+            link: self.name.clone(),
+            tag: tag.to_owned(),
+            pointer: pointer.to_owned(),
+            found,
+        };
+        match document.pointer(pointer) {
+            Some(serde_json::Value::Number(n)) => {
+                n.as_f64().ok_or_else(|| not(format!("{n} is not a finite number")))
+            }
+            Some(other) => Err(not(format!("{other} is not a number"))),
+            None => Err(not("nothing is there".into())),
+        }
+    }
+}
+
+fn describe(e: &reqwest::Error) -> String {
+    if e.is_timeout() {
+        "no answer within the timeout".into()
+    } else if e.is_connect() {
+        format!("cannot connect ({e})")
+    } else {
+        e.to_string()
+    }
+}

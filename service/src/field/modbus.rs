@@ -1,0 +1,253 @@
+//! A Modbus/TCP link: one connection shared by every loop that uses it, one request in
+//! flight, a timeout on each request, and reconnection with capped exponential backoff
+//! and jitter.
+
+use std::sync::Arc;
+use std::time::Duration;
+
+use tokio::sync::Mutex;
+use tokio::time::{Instant, timeout};
+use tokio_modbus::client::{Context, Reader, Writer};
+use tokio_modbus::{ExceptionCode, Slave};
+
+use super::error::{Function, LinkError};
+use crate::config::RegisterSpace;
+
+/// First wait before reconnecting after a failure; doubles per failure up to the cap.
+const BACKOFF_FIRST: Duration = Duration::from_millis(200);
+const BACKOFF_CAP: Duration = Duration::from_secs(5);
+
+/// A cheap-to-clone handle on one Modbus/TCP server.
+#[derive(Clone)]
+pub struct ModbusLink {
+    inner: Arc<Inner>,
+}
+
+struct Inner {
+    name: String,
+    address: String,
+    unit: u8,
+    timeout: Duration,
+    /// Held for the whole of a request, so requests on a link never overlap.
+    connection: Mutex<Connection>,
+}
+
+#[derive(Default)]
+struct Connection {
+    context: Option<Context>,
+    failures: u32,
+    retry_at: Option<Instant>,
+}
+
+/// One request, before it is sent.
+enum Request<'a> {
+    Read(RegisterSpace, u16, u16),
+    Write(u16, &'a [u16]),
+}
+
+impl Request<'_> {
+    fn function(&self) -> Function {
+        match self {
+            Request::Read(RegisterSpace::Input, ..) => Function::ReadInputRegisters,
+            Request::Read(RegisterSpace::Holding, ..) => Function::ReadHoldingRegisters,
+            Request::Write(_, [_]) => Function::WriteSingleRegister,
+            Request::Write(..) => Function::WriteMultipleRegisters,
+        }
+    }
+
+    fn address(&self) -> u16 {
+        match self {
+            Request::Read(_, a, _) | Request::Write(a, _) => *a,
+        }
+    }
+
+    async fn send(&self, context: &mut Context) -> tokio_modbus::Result<Vec<u16>> {
+        match *self {
+            Request::Read(RegisterSpace::Input, a, n) => context.read_input_registers(a, n).await,
+            Request::Read(RegisterSpace::Holding, a, n) => context.read_holding_registers(a, n).await,
+            Request::Write(a, [word]) => {
+                context.write_single_register(a, *word).await.map(|r| r.map(|()| Vec::new()))
+            }
+            Request::Write(a, words) => {
+                context.write_multiple_registers(a, words).await.map(|r| r.map(|()| Vec::new()))
+            }
+        }
+    }
+}
+
+impl std::fmt::Debug for ModbusLink {
+    fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
+        f.debug_struct("ModbusLink")
+            .field("name", &self.inner.name)
+            .field("address", &self.inner.address)
+            .finish()
+    }
+}
+
+impl ModbusLink {
+    /// A link to `address` (`host:port`); nothing is connected until the first request.
+    pub fn new(name: &str, address: &str, unit: u8, timeout: Duration) -> Self {
+        ModbusLink {
+            inner: Arc::new(Inner {
+                name: name.to_owned(),
+                address: address.to_owned(),
+                unit,
+                timeout,
+                connection: Mutex::default(),
+            }),
+        }
+    }
+
+    pub fn name(&self) -> &str {
+        &self.inner.name
+    }
+
+    /// Reads `count` registers from `start` (at most 125, the protocol's limit).
+    pub async fn read(&self, space: RegisterSpace, start: u16, count: u16) -> Result<Vec<u16>, LinkError> {
+        self.request(Request::Read(space, start, count)).await
+    }
+
+    /// Writes registers from `start`: one with function 0x06, more with 0x10.
+    pub async fn write(&self, start: u16, words: &[u16]) -> Result<(), LinkError> {
+        self.request(Request::Write(start, words)).await.map(|_| ())
+    }
+
+    #[tracing::instrument(level = "trace", skip_all, fields(link = %self.inner.name))]
+    async fn request(&self, request: Request<'_>) -> Result<Vec<u16>, LinkError> {
+        let inner = &*self.inner;
+        let mut connection = inner.connection.lock().await;
+        let context = match connection.context.as_mut() {
+            Some(context) => context,
+            None => {
+                let context = self.connect(&mut connection).await?;
+                connection.context.insert(context)
+            }
+        };
+        let (function, address) = (request.function(), request.address());
+        let failed = match timeout(inner.timeout, request.send(context)).await {
+            Ok(Ok(Ok(words))) => return Ok(words),
+            // An exception is a proper answer: the connection stays up.
+            Ok(Ok(Err(code))) => return Err(exception(&inner.name, function, address, code)),
+            Ok(Err(e)) => {
+                LinkError::Transport { link: inner.name.clone(), function, address, reason: e.to_string() }
+            }
+            Err(_) => LinkError::Timeout {
+                link: inner.name.clone(),
+                function,
+                address,
+                timeout_ms: inner.timeout.as_millis() as u64,
+            },
+        };
+        // After a transport error or a timeout the stream may still deliver a stale
+        // answer, so it is dropped and a fresh one is opened.
+        connection.context = None;
+        self.note_failure(&mut connection, &failed);
+        Err(failed)
+    }
+
+    async fn connect(&self, connection: &mut Connection) -> Result<Context, LinkError> {
+        let inner = &*self.inner;
+        if let Some(at) = connection.retry_at {
+            let now = Instant::now();
+            if now < at {
+                return Err(LinkError::Down {
+                    link: inner.name.clone(),
+                    retry_in_ms: (at - now).as_millis() as u64,
+                });
+            }
+        }
+        let attempt = async {
+            let mut last = None;
+            for addr in tokio::net::lookup_host(inner.address.as_str()).await? {
+                match tokio_modbus::client::tcp::connect_slave(addr, Slave(inner.unit)).await {
+                    Ok(context) => return Ok(context),
+                    Err(e) => last = Some(e),
+                }
+            }
+            Err(last.unwrap_or_else(|| std::io::Error::other("the name resolves to no address")))
+        };
+        let result = match timeout(inner.timeout, attempt).await {
+            Ok(Ok(context)) => Ok(context),
+            Ok(Err(e)) => Err(e.to_string()),
+            Err(_) => Err(format!("no connection within {} ms", inner.timeout.as_millis())),
+        };
+        match result {
+            Ok(context) => {
+                if connection.failures > 0 {
+                    tracing::info!(link = %inner.name, address = %inner.address, "link connected again");
+                } else {
+                    tracing::info!(link = %inner.name, address = %inner.address, "link connected");
+                }
+                connection.failures = 0;
+                connection.retry_at = None;
+                Ok(context)
+            }
+            Err(reason) => {
+                let error =
+                    LinkError::Connect { link: inner.name.clone(), address: inner.address.clone(), reason };
+                self.note_failure(connection, &error);
+                Err(error)
+            }
+        }
+    }
+
+    /// Schedules the next connection attempt; logs the first failure of a run of them
+    /// only, so a dead link is one clear line rather than one per tick.
+    fn note_failure(&self, connection: &mut Connection, error: &LinkError) {
+        if connection.failures == 0 {
+            tracing::warn!(link = %self.inner.name, error = %error, "link down; retrying with backoff");
+        } else {
+            tracing::debug!(link = %self.inner.name, error = %error, "link still down");
+        }
+        connection.failures = connection.failures.saturating_add(1);
+        connection.retry_at = Some(Instant::now() + backoff(connection.failures, rand::random::<f64>()));
+    }
+}
+
+/// Wait before attempt `failures + 1`: 0.2 s doubling to at most 5 s, spread by ±20%
+/// (`jitter` in 0..1) so that many links do not reconnect in step.
+pub fn backoff(failures: u32, jitter: f64) -> Duration {
+    let doubled = BACKOFF_FIRST.saturating_mul(1u32 << failures.saturating_sub(1).min(16));
+    doubled.min(BACKOFF_CAP).mul_f64(0.8 + 0.4 * jitter.clamp(0.0, 1.0))
+}
+
+fn exception(link: &str, function: Function, address: u16, code: ExceptionCode) -> LinkError {
+    LinkError::Exception {
+        link: link.to_owned(),
+        function,
+        address,
+        code: u8::from(code),
+        name: code.to_string(),
+    }
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn backoff_doubles_from_200_ms_to_a_5_s_cap() {
+        assert_eq!(backoff(1, 0.5), Duration::from_millis(200));
+        assert_eq!(backoff(2, 0.5), Duration::from_millis(400));
+        assert_eq!(backoff(5, 0.5), Duration::from_millis(3200));
+        assert_eq!(backoff(6, 0.5), Duration::from_secs(5));
+        assert_eq!(backoff(1000, 0.5), Duration::from_secs(5));
+    }
+
+    #[test]
+    fn backoff_jitter_spreads_by_twenty_percent() {
+        assert_eq!(backoff(1, 0.0), Duration::from_millis(160));
+        assert_eq!(backoff(1, 1.0), Duration::from_millis(240));
+    }
+
+    #[tokio::test]
+    async fn an_unreachable_server_is_a_connect_error_then_down_until_the_backoff() {
+        // Port 9 on loopback: nothing listens there.
+        let link = ModbusLink::new("plc", "127.0.0.1:9", 1, Duration::from_millis(200));
+        let first = link.read(RegisterSpace::Input, 0, 2).await.unwrap_err();
+        assert_eq!(first.kind(), "connect", "{first}");
+        assert!(first.to_string().starts_with("link plc: cannot connect to 127.0.0.1:9"), "{first}");
+        let second = link.read(RegisterSpace::Input, 0, 2).await.unwrap_err();
+        assert_eq!(second.kind(), "down", "{second}");
+    }
+}

@@ -1,0 +1,8 @@
+//! The live loops: one task per loop on its tick, deciding through [`control`] (shared
+//! with the rehearsal) and publishing a [`status::LoopStatus`] on a watch channel.
+
+pub mod control;
+pub mod status;
+mod task;
+
+pub use task::{LoopTask, run};

@@ -1,0 +1,77 @@
+//! The latest status of a loop, as the API and the progress lines show it.
+
+use serde::Serialize;
+
+use crate::config::{LoopConfig, Range};
+
+#[derive(Debug, Clone, PartialEq, Serialize)]
+pub struct LoopStatus {
+    pub name: String,
+    /// What was asked for: seeking, holding, observing or stopped.
+    pub mode: &'static str,
+    /// What the loop is doing: a mode, or fallback or no_permit.
+    pub state: &'static str,
+    pub fallback_reason: Option<String>,
+    pub direction: &'static str,
+    pub method: &'static str,
+    pub permitted: bool,
+    pub objective: Option<f64>,
+    /// RFC 3339 UTC time of the last successful read of the objective.
+    pub objective_at: Option<String>,
+    pub ticks: u64,
+    pub inputs: Vec<InputStatus>,
+}
+
+#[derive(Debug, Clone, PartialEq, Serialize)]
+pub struct InputStatus {
+    pub name: String,
+    pub applied: f64,
+    pub estimate: f64,
+    pub gradient: f64,
+    pub bounds: Bounds,
+    pub limits: Bounds,
+    pub safe: f64,
+}
+
+#[derive(Debug, Clone, Copy, PartialEq, Serialize)]
+pub struct Bounds {
+    pub min: f64,
+    pub max: f64,
+}
+
+impl From<Range> for Bounds {
+    fn from(r: Range) -> Self {
+        Bounds { min: r.min, max: r.max }
+    }
+}
+
+impl LoopStatus {
+    /// The status of a loop that has not ticked yet.
+    pub fn initial(config: &LoopConfig) -> Self {
+        LoopStatus {
+            name: config.name.clone(),
+            mode: config.start_mode.as_str(),
+            state: config.start_mode.as_str(),
+            fallback_reason: None,
+            direction: config.direction.as_str(),
+            method: config.method.as_str(),
+            permitted: true,
+            objective: None,
+            objective_at: None,
+            ticks: 0,
+            inputs: config
+                .inputs
+                .iter()
+                .map(|i| InputStatus {
+                    name: i.name.clone(),
+                    applied: f64::NAN,
+                    estimate: f64::NAN,
+                    gradient: 0.0,
+                    bounds: i.bounds.into(),
+                    limits: i.limits.into(),
+                    safe: i.safe,
+                })
+                .collect(),
+        }
+    }
+}

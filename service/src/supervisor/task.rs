@@ -1,0 +1,212 @@
+//! The live loop: a [`LoopTask`] does one tick (read, decide, write, publish) when asked;
+//! [`run`] only decides when to ask.
+
+use std::sync::Arc;
+use std::time::{Duration, SystemTime};
+
+use tokio::sync::watch;
+use tokio::time::{Instant, MissedTickBehavior};
+use tokio_util::sync::CancellationToken;
+
+use super::control::{Control, TickReport};
+use super::status::{InputStatus, LoopStatus};
+use crate::config::{Config, LoopConfig};
+use crate::field::{LinkError, Links, LoopIo};
+
+/// One loop bound to its links.
+pub struct LoopTask {
+    config: Arc<LoopConfig>,
+    control: Control,
+    io: LoopIo,
+    values: Vec<f64>,
+    status: watch::Sender<LoopStatus>,
+    objective_at: Option<SystemTime>,
+    last_tick: Option<u64>,
+    skipped_ticks: u64,
+    /// Whether the last write of each input failed, so each failure is logged once.
+    write_failing: Vec<bool>,
+    read_failing: bool,
+}
+
+impl LoopTask {
+    /// The task for loop `index` of a validated config, and a receiver of its status.
+    pub fn new(config: &Config, index: usize, links: &Links) -> (Self, watch::Receiver<LoopStatus>) {
+        let loop_config = Arc::new(config.loops[index].clone());
+        let control = Control::new(&loop_config);
+        let io = LoopIo::new(config, links, index, control.objective_names());
+        let (status, receiver) = watch::channel(LoopStatus::initial(&loop_config));
+        let task = LoopTask {
+            values: vec![f64::NAN; control.objective_names().len()],
+            write_failing: vec![false; loop_config.inputs.len()],
+            config: loop_config,
+            control,
+            io,
+            status,
+            objective_at: None,
+            last_tick: None,
+            skipped_ticks: 0,
+            read_failing: false,
+        };
+        (task, receiver)
+    }
+
+    pub fn name(&self) -> &str {
+        &self.config.name
+    }
+
+    pub fn tick_s(&self) -> f64 {
+        self.config.tick_s
+    }
+
+    /// Ticks that came too late after a stall and were skipped.
+    pub fn skipped_ticks(&self) -> u64 {
+        self.skipped_ticks
+    }
+
+    /// One tick at tick index `n`: start if not started, read the tags, let the control
+    /// decide, write the setpoints, publish the status.
+    pub async fn tick(&mut self, n: u64) -> TickReport {
+        if let Some(last) = self.last_tick
+            && n > last + 1
+        {
+            self.skipped_ticks += n - last - 1;
+            tracing::debug!(r#loop = %self.config.name, skipped = n - last - 1, "late ticks skipped");
+        }
+        self.last_tick = Some(n);
+        if !self.control.is_started() {
+            self.try_start().await;
+        }
+        let read = self.io.read(&mut self.values).await;
+        self.note_read(&read);
+        let report = self.control.tick(n, read.is_ok().then_some(self.values.as_slice()));
+        if read.is_ok() {
+            self.objective_at = Some(SystemTime::now());
+        }
+        if report.write {
+            self.write_applied().await;
+        }
+        self.publish();
+        report
+    }
+
+    /// Starts from the setpoints in the PLC; waits for a later tick when they cannot be
+    /// read, rather than writing anything without knowing where the process stands.
+    async fn try_start(&mut self) {
+        let mut read_back = Vec::with_capacity(self.config.inputs.len());
+        for i in 0..self.config.inputs.len() {
+            match self.io.read_back(i).await {
+                Ok(v) => read_back.push(Some(v)),
+                Err(e) => {
+                    tracing::debug!(r#loop = %self.config.name, error = %e, "setpoints not readable yet; start waits");
+                    return;
+                }
+            }
+        }
+        self.control.start(&read_back);
+        let estimates: Vec<String> = self
+            .config
+            .inputs
+            .iter()
+            .zip(self.control.inputs())
+            .zip(&read_back)
+            .map(|((c, i), r)| format!("{}={} (read back {})", c.name, i.estimate, r.unwrap_or(f64::NAN)))
+            .collect();
+        tracing::info!(r#loop = %self.config.name, mode = %self.control.mode(), start = %estimates.join(", "), "loop started");
+    }
+
+    fn note_read(&mut self, read: &Result<(), LinkError>) {
+        match read {
+            Err(e) if !self.read_failing => {
+                tracing::warn!(r#loop = %self.config.name, error = %e, "cannot read the objective's tags");
+                self.read_failing = true;
+            }
+            Ok(()) if self.read_failing => {
+                tracing::info!(r#loop = %self.config.name, "reading the objective's tags again");
+                self.read_failing = false;
+            }
+            _ => {}
+        }
+    }
+
+    async fn write_applied(&mut self) {
+        let applied: Vec<f64> = self.control.inputs().iter().map(|i| i.applied).collect();
+        for (i, value) in applied.into_iter().enumerate() {
+            self.write_input(i, value).await;
+        }
+    }
+
+    async fn write_input(&mut self, i: usize, value: f64) {
+        let result = self.io.write(i, value).await;
+        let input = &self.config.inputs[i].name;
+        match (&result, self.write_failing[i]) {
+            (Err(e), false) => {
+                tracing::warn!(r#loop = %self.config.name, input = %input, error = %e, "setpoint write failed")
+            }
+            (Ok(()), true) => {
+                tracing::info!(r#loop = %self.config.name, input = %input, "setpoint writes work again")
+            }
+            _ => {}
+        }
+        self.write_failing[i] = result.is_err();
+    }
+
+    /// Writes the `on_shutdown` values of a loop that is writing; called once on stop.
+    pub async fn shutdown(&mut self) {
+        let Some(values) = self.control.shutdown_values() else { return };
+        for (i, value) in values.into_iter().enumerate() {
+            self.write_input(i, value).await;
+        }
+        tracing::info!(r#loop = %self.config.name, on_shutdown = %self.config.on_shutdown, "shutdown setpoints written");
+    }
+
+    fn publish(&self) {
+        let c = &self.control;
+        let inputs = self
+            .config
+            .inputs
+            .iter()
+            .zip(c.inputs())
+            .map(|(cfg, i)| InputStatus {
+                name: cfg.name.clone(),
+                applied: i.applied,
+                estimate: i.estimate,
+                gradient: i.gradient,
+                bounds: i.guard.bounds.into(),
+                limits: cfg.limits.into(),
+                safe: cfg.safe,
+            })
+            .collect();
+        self.status.send_replace(LoopStatus {
+            name: self.config.name.clone(),
+            mode: c.mode().as_str(),
+            state: c.state().as_str(),
+            fallback_reason: None,
+            direction: self.config.direction.as_str(),
+            method: self.config.method.as_str(),
+            permitted: true,
+            objective: c.objective(),
+            objective_at: self.objective_at.map(|t| humantime::format_rfc3339_millis(t).to_string()),
+            ticks: c.ticks(),
+            inputs,
+        });
+    }
+}
+
+/// Ticks a loop every `period` of wall time until cancelled, then writes its shutdown
+/// values. A tick that comes too late after a stall is skipped, never queued up.
+pub async fn run(mut task: LoopTask, period: Duration, cancel: CancellationToken) {
+    let start = Instant::now();
+    let mut interval = tokio::time::interval_at(start, period);
+    interval.set_missed_tick_behavior(MissedTickBehavior::Skip);
+    loop {
+        tokio::select! {
+            biased;
+            () = cancel.cancelled() => break,
+            at = interval.tick() => {
+                let n = ((at - start).as_secs_f64() / period.as_secs_f64()).round() as u64;
+                task.tick(n).await;
+            }
+        }
+    }
+    task.shutdown().await;
+}
