@@ -72,7 +72,7 @@ impl App {
         let cancel = CancellationToken::new();
         let loops = TaskTracker::new();
         for (task, period) in self.tasks {
-            loops.spawn(supervisor::run(task, period, cancel.clone()));
+            loops.spawn(supervisor::run(task, period, cancel.clone(), |_| {}));
         }
         loops.close();
         let api = axum::serve(self.listener, api::router(self.statuses))

@@ -81,3 +81,241 @@ pub fn slope(x: &[f64], y: &[f64]) -> f64 {
     let sxx: f64 = x.iter().map(|a| (a - mx) * (a - mx)).sum();
     sxy / sxx
 }
+
+/// A loopback port nobody listens on right now.
+pub fn free_port() -> u16 {
+    std::net::TcpListener::bind("127.0.0.1:0")
+        .and_then(|l| l.local_addr())
+        .expect("a free loopback port")
+        .port()
+}
+
+/// Starts `ridgeline sim` serving `plant` on `127.0.0.1:port` and waits until it listens.
+pub fn spawn_sim(plant: &Path, port: u16) -> Peer {
+    let mut command = Command::new(ridgeline_bin());
+    command.args([
+        "sim",
+        "--plant",
+        plant.to_str().expect("utf-8 path"),
+        "--listen",
+        &format!("127.0.0.1:{port}"),
+    ]);
+    Peer::start("ridgeline sim", command, std::time::Duration::from_secs(10), |l| {
+        l.contains(" over Modbus/TCP on ")
+    })
+    .0
+}
+
+/// Starts `ridgeline run` with `config` (whose `[service] listen` is `api`) and waits
+/// until its API answers; its log is [`Peer::stderr`].
+pub fn spawn_service(config: &Path, api: std::net::SocketAddr) -> Peer {
+    let mut command = Command::new(ridgeline_bin());
+    command.args(["run", "--config", config.to_str().expect("utf-8 path")]);
+    let peer = Peer::spawn("ridgeline run", command);
+    wait_until("the service's API answers", std::time::Duration::from_secs(10), || {
+        http_get(api, "/healthz").is_some_and(|(status, _)| status == 200)
+    });
+    peer
+}
+
+/// Polls `condition` every 50 ms until it holds; fails the test after `limit`.
+pub fn wait_until(what: &str, limit: std::time::Duration, mut condition: impl FnMut() -> bool) {
+    let deadline = std::time::Instant::now() + limit;
+    while !condition() {
+        assert!(std::time::Instant::now() < deadline, "timed out after {limit:?} waiting until {what}");
+        std::thread::sleep(std::time::Duration::from_millis(50));
+    }
+}
+
+/// A plain HTTP/1.1 GET on loopback: the status code and the body, or `None` when
+/// nothing answers.
+pub fn http_get(addr: std::net::SocketAddr, path: &str) -> Option<(u16, String)> {
+    use std::io::{Read, Write};
+    let mut stream = std::net::TcpStream::connect_timeout(&addr, std::time::Duration::from_secs(2)).ok()?;
+    stream.set_read_timeout(Some(std::time::Duration::from_secs(5))).ok()?;
+    write!(stream, "GET {path} HTTP/1.1\r\nHost: {addr}\r\nConnection: close\r\n\r\n").ok()?;
+    let mut response = Vec::new();
+    stream.read_to_end(&mut response).ok()?;
+    let text = String::from_utf8_lossy(&response);
+    let (head, body) = text.split_once("\r\n\r\n")?;
+    let status = head.split_whitespace().nth(1)?.parse().ok()?;
+    let body = if head.to_ascii_lowercase().contains("transfer-encoding: chunked") {
+        dechunk(body)
+    } else {
+        body.to_owned()
+    };
+    Some((status, body))
+}
+
+fn dechunk(mut body: &str) -> String {
+    let mut out = String::new();
+    while let Some((size, rest)) = body.split_once("\r\n") {
+        let Ok(n) = usize::from_str_radix(size.trim(), 16) else { break };
+        if n == 0 || rest.len() < n {
+            break;
+        }
+        out.push_str(&rest[..n]);
+        body = rest[n..].trim_start_matches("\r\n");
+    }
+    out
+}
+
+/// GETs a JSON document from the service's API.
+pub fn get_json(api: std::net::SocketAddr, path: &str) -> Option<serde_json::Value> {
+    let (status, body) = http_get(api, path)?;
+    (status == 200).then(|| serde_json::from_str(&body).ok()).flatten()
+}
+
+/// Reads holding registers with a hand-built Modbus/TCP request (function 0x03), so
+/// tests can look at a register without going through Ridgeline's own client.
+/// Source: Modbus Messaging on TCP/IP Implementation Guide V1.0b §3.1 (MBAP header),
+/// Modbus Application Protocol Specification V1.1b3 §6.3.
+pub fn read_holding_registers(port: u16, address: u16, count: u16) -> Option<Vec<u16>> {
+    use std::io::{Read, Write};
+    let mut stream = std::net::TcpStream::connect(("127.0.0.1", port)).ok()?;
+    stream.set_read_timeout(Some(std::time::Duration::from_secs(2))).ok()?;
+    let [a_hi, a_lo] = address.to_be_bytes();
+    let [c_hi, c_lo] = count.to_be_bytes();
+    // transaction 1, protocol 0, length 6, unit 1, function 3, address, count
+    stream.write_all(&[0, 1, 0, 0, 0, 6, 1, 3, a_hi, a_lo, c_hi, c_lo]).ok()?;
+    let mut header = [0u8; 9];
+    stream.read_exact(&mut header).ok()?;
+    if header[7] != 3 {
+        return None;
+    }
+    let mut data = vec![0u8; usize::from(header[8])];
+    stream.read_exact(&mut data).ok()?;
+    Some(data.chunks_exact(2).map(|w| u16::from_be_bytes([w[0], w[1]])).collect())
+}
+
+/// An f32 held in two registers, high word first.
+pub fn f32_from_words(words: &[u16]) -> f64 {
+    f64::from(f32::from_bits((u32::from(words[0]) << 16) | u32::from(words[1])))
+}
+
+/// A process the tests talk to over the network (a reference peer from `tests/peers/`,
+/// `ridgeline sim` or `ridgeline run`): started with piped stdio, killed and reaped on
+/// drop, so a failing test leaves no stray process behind.
+pub struct Peer {
+    name: String,
+    child: std::process::Child,
+    lines: std::sync::mpsc::Receiver<String>,
+    stderr: std::sync::Arc<std::sync::Mutex<String>>,
+}
+
+impl Peer {
+    /// Starts `command` without waiting for it.
+    pub fn spawn(name: &str, mut command: Command) -> Peer {
+        use std::io::BufRead;
+        use std::process::Stdio;
+        let mut child = command
+            .stdin(Stdio::piped())
+            .stdout(Stdio::piped())
+            .stderr(Stdio::piped())
+            .spawn()
+            .unwrap_or_else(|e| panic!("{name} does not start: {e}"));
+        let stdout = child.stdout.take().expect("stdout is piped");
+        let stderr = child.stderr.take().expect("stderr is piped");
+        let (send, lines) = std::sync::mpsc::channel();
+        // Both pipes are drained all the time, so a chatty peer never blocks on a full pipe.
+        std::thread::spawn(move || {
+            for line in std::io::BufReader::new(stdout).lines().map_while(Result::ok) {
+                if send.send(line).is_err() {
+                    break;
+                }
+            }
+        });
+        let collected = std::sync::Arc::new(std::sync::Mutex::new(String::new()));
+        let sink = collected.clone();
+        std::thread::spawn(move || {
+            for line in std::io::BufReader::new(stderr).lines().map_while(Result::ok) {
+                let mut text = sink.lock().unwrap_or_else(|p| p.into_inner());
+                text.push_str(&line);
+                text.push('\n');
+            }
+        });
+        Peer { name: name.to_owned(), child, lines, stderr: collected }
+    }
+
+    /// Starts `command` and waits at most `timeout` for a stdout line for which `ready`
+    /// is true; returns the peer and that line. Fails the test with the peer's stderr if
+    /// the peer exits or stays silent instead.
+    pub fn start(
+        name: &str,
+        command: Command,
+        timeout: std::time::Duration,
+        ready: impl Fn(&str) -> bool,
+    ) -> (Peer, String) {
+        let mut peer = Peer::spawn(name, command);
+        let deadline = std::time::Instant::now() + timeout;
+        loop {
+            let left = deadline.saturating_duration_since(std::time::Instant::now());
+            match peer.lines.recv_timeout(left) {
+                Ok(line) if ready(&line) => return (peer, line),
+                Ok(_) => continue,
+                Err(std::sync::mpsc::RecvTimeoutError::Timeout) => {
+                    panic!("{name} was not ready within {timeout:?}; stderr:\n{}", peer.stop())
+                }
+                Err(std::sync::mpsc::RecvTimeoutError::Disconnected) => {
+                    panic!("{name} exited before it was ready; stderr:\n{}", peer.stop())
+                }
+            }
+        }
+    }
+
+    /// The next line the peer prints, waiting at most `timeout`.
+    pub fn next_line(&self, timeout: std::time::Duration) -> Option<String> {
+        self.lines.recv_timeout(timeout).ok()
+    }
+
+    /// What the peer wrote to stderr so far (a service's log).
+    pub fn stderr(&self) -> String {
+        self.stderr.lock().unwrap_or_else(|p| p.into_inner()).clone()
+    }
+
+    pub fn is_running(&mut self) -> bool {
+        matches!(self.child.try_wait(), Ok(None))
+    }
+
+    /// Sends SIGTERM (what systemd sends) and waits at most 20 s for the exit code.
+    pub fn terminate(mut self) -> Option<i32> {
+        let _ = Command::new("kill").args(["-TERM", &self.child.id().to_string()]).status();
+        let deadline = std::time::Instant::now() + std::time::Duration::from_secs(20);
+        while std::time::Instant::now() < deadline {
+            if let Ok(Some(status)) = self.child.try_wait() {
+                return status.code();
+            }
+            std::thread::sleep(std::time::Duration::from_millis(20));
+        }
+        None
+    }
+
+    /// Kills the peer at once (SIGKILL, like a crash) and returns what it wrote to stderr.
+    pub fn stop(&mut self) -> String {
+        let _ = self.child.kill();
+        let _ = self.child.wait();
+        // Give the reader thread a moment to take the last lines.
+        std::thread::sleep(std::time::Duration::from_millis(20));
+        self.stderr()
+    }
+
+    pub fn name(&self) -> &str {
+        &self.name
+    }
+}
+
+impl Drop for Peer {
+    fn drop(&mut self) {
+        let _ = self.child.kill();
+        let _ = self.child.wait();
+    }
+}
+
+/// A reference peer script from `tests/peers/`, run with the reference interpreter.
+pub fn python_peer(script: &str) -> Command {
+    let path = Path::new(env!("CARGO_MANIFEST_DIR")).join("peers").join(script);
+    assert!(path.exists(), "{} is missing", path.display());
+    let mut command = Command::new(reference_python());
+    command.arg(path);
+    command
+}

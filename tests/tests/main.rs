@@ -7,6 +7,8 @@ mod check_command;
 mod classic_loop;
 mod drive;
 mod filters;
+mod live;
+mod modbus_interop;
 mod plant_lag;
 mod properties;
 mod rehearse_command;

@@ -250,4 +250,53 @@ mod tests {
         let second = link.read(RegisterSpace::Input, 0, 2).await.unwrap_err();
         assert_eq!(second.kind(), "down", "{second}");
     }
+
+    /// A TCP peer that accepts connections and then does `answer` with each.
+    async fn peer(answer: fn(tokio::net::TcpStream)) -> String {
+        let listener = tokio::net::TcpListener::bind("127.0.0.1:0").await.unwrap();
+        let addr = listener.local_addr().unwrap().to_string();
+        tokio::spawn(async move {
+            while let Ok((stream, _)) = listener.accept().await {
+                answer(stream);
+            }
+        });
+        addr
+    }
+
+    #[tokio::test]
+    async fn a_peer_that_hangs_is_a_timeout_naming_function_and_register() {
+        let addr = peer(|stream| {
+            tokio::spawn(async move {
+                let _held = stream;
+                std::future::pending::<()>().await;
+            });
+        })
+        .await;
+        let link = ModbusLink::new("plc", &addr, 1, Duration::from_millis(100));
+        let started = std::time::Instant::now();
+        let e = link.read(RegisterSpace::Input, 100, 2).await.unwrap_err();
+        assert_eq!(e.kind(), "timeout", "{e}");
+        assert_eq!(
+            e.to_string(),
+            "link plc: read input registers (0x04) at register 100 got no answer within 100 ms"
+        );
+        assert!(started.elapsed() < Duration::from_secs(2));
+    }
+
+    #[tokio::test]
+    async fn a_peer_that_answers_garbage_is_an_error_not_a_panic() {
+        let addr = peer(|mut stream| {
+            tokio::spawn(async move {
+                use tokio::io::{AsyncReadExt, AsyncWriteExt};
+                let mut request = [0u8; 64];
+                let _ = stream.read(&mut request).await;
+                let _ = stream.write_all(b"HTTP/1.1 400 Bad Request\r\n\r\n").await;
+            });
+        })
+        .await;
+        let link = ModbusLink::new("plc", &addr, 1, Duration::from_millis(200));
+        let e = link.write(200, &[1, 2]).await.unwrap_err();
+        assert!(matches!(e.kind(), "transport" | "timeout"), "{e}");
+        assert!(e.to_string().contains("write multiple registers (0x10) at register 200"), "{e}");
+    }
 }

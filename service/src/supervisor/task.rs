@@ -192,21 +192,94 @@ impl LoopTask {
     }
 }
 
+/// Something done once per tick, given the tick index.
+pub trait OnTick {
+    fn on_tick(&mut self, n: u64) -> impl Future<Output = ()> + Send;
+}
+
+impl OnTick for LoopTask {
+    async fn on_tick(&mut self, n: u64) {
+        self.tick(n).await;
+    }
+}
+
 /// Ticks a loop every `period` of wall time until cancelled, then writes its shutdown
-/// values. A tick that comes too late after a stall is skipped, never queued up.
-pub async fn run(mut task: LoopTask, period: Duration, cancel: CancellationToken) {
+/// values. `observe` hears how late each tick started.
+pub async fn run(
+    mut task: LoopTask,
+    period: Duration,
+    cancel: CancellationToken,
+    observe: impl FnMut(Duration),
+) {
+    schedule(period, &cancel, observe, &mut task).await;
+    task.shutdown().await;
+}
+
+/// Calls `work` with the tick index every `period` until cancelled. A tick more than half
+/// a period late (after a stall) is skipped, never queued up: the index follows the wall
+/// clock, so the dither stays in phase with time, and the gap in the indices counts the
+/// skipped ticks. `observe` hears the lateness of each tick that runs.
+pub async fn schedule(
+    period: Duration,
+    cancel: &CancellationToken,
+    mut observe: impl FnMut(Duration),
+    work: &mut impl OnTick,
+) {
     let start = Instant::now();
     let mut interval = tokio::time::interval_at(start, period);
     interval.set_missed_tick_behavior(MissedTickBehavior::Skip);
     loop {
         tokio::select! {
             biased;
-            () = cancel.cancelled() => break,
+            () = cancel.cancelled() => return,
             at = interval.tick() => {
+                let late = Instant::now() - at;
+                // After a stall the interval hands back the missed tick once; it is
+                // skipped here, so the next tick comes on the clock's next beat.
+                if late > period / 2 {
+                    continue;
+                }
+                observe(late);
                 let n = ((at - start).as_secs_f64() / period.as_secs_f64()).round() as u64;
-                task.tick(n).await;
+                work.on_tick(n).await;
             }
         }
     }
-    task.shutdown().await;
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    /// Records tick indices, stalls at one tick, and stops after another.
+    struct Recorder {
+        seen: Vec<u64>,
+        stall_at: u64,
+        stop_at: u64,
+        cancel: CancellationToken,
+    }
+
+    impl OnTick for Recorder {
+        async fn on_tick(&mut self, n: u64) {
+            self.seen.push(n);
+            if n == self.stall_at {
+                // A stall of 2.5 periods, e.g. a link timing out.
+                tokio::time::sleep(Duration::from_millis(2500)).await;
+            }
+            if n >= self.stop_at {
+                self.cancel.cancel();
+            }
+        }
+    }
+
+    #[tokio::test(start_paused = true)]
+    async fn ticks_follow_the_clock_and_a_stall_skips_ticks_instead_of_queueing_them() {
+        let cancel = CancellationToken::new();
+        let mut r = Recorder { seen: Vec::new(), stall_at: 3, stop_at: 8, cancel: cancel.clone() };
+        let mut late = Vec::new();
+        schedule(Duration::from_secs(1), &cancel, |d| late.push(d), &mut r).await;
+        assert_eq!(r.seen, vec![0, 1, 2, 3, 6, 7, 8]);
+        // Every tick that ran started on time; the stalled ones were skipped, not late.
+        assert!(late.iter().all(|d| *d < Duration::from_millis(1)), "{late:?}");
+    }
 }
