@@ -209,7 +209,10 @@ fn block_on(work: impl std::future::Future<Output = anyhow::Result<()>>) -> Exit
 fn init_logging(format: LogFormat, default: &str) {
     let filter = tracing_subscriber::EnvFilter::try_from_default_env()
         .unwrap_or_else(|_| tracing_subscriber::EnvFilter::new(default));
-    let builder = tracing_subscriber::fmt().with_env_filter(filter).with_writer(std::io::stderr);
+    let builder = tracing_subscriber::fmt()
+        .with_env_filter(filter)
+        .with_writer(std::io::stderr)
+        .with_ansi(std::io::stderr().is_terminal());
     let _ = match format {
         LogFormat::Text => builder.try_init(),
         LogFormat::Json => builder.json().try_init(),

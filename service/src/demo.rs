@@ -48,7 +48,9 @@ pub async fn run(options: &Options, stop: impl Future<Output = ()>) -> anyhow::R
             *address = plant_addr.to_string();
         }
     }
-    let app = App::build(&config, &app::Options { speed: options.speed, listen: options.listen }).await?;
+    let app = App::build(&config, &app::Options { speed: options.speed, listen: options.listen })
+        .await
+        .context("the demo's API needs a free port; pick one with --listen 127.0.0.1:PORT")?;
     println!(
         "Ridgeline demo: a simulated boiler and chilled-water plant on Modbus/TCP {plant_addr}, \
          the service's API on http://{}/api/v1/loops, {}x real time.",

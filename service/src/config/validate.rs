@@ -68,9 +68,16 @@ fn validate_link(link: &super::Link, p: &Problems) {
             }
         }
         LinkKind::HttpGet { url } => {
-            let rest = url.strip_prefix("http://").or_else(|| url.strip_prefix("https://"));
-            if rest.is_none_or(|r| r.is_empty() || r.starts_with('/')) {
-                p.at(&format!("{path}.http_get"), format!("`{url}` is not an http:// or https:// URL"));
+            if url.starts_with("https://") {
+                p.at(
+                    &format!("{path}.http_get"),
+                    format!(
+                        "`{url}`: https is not supported yet; serve the readings over plain http on the \
+                         control network, or through a local proxy"
+                    ),
+                );
+            } else if url.strip_prefix("http://").is_none_or(|r| r.is_empty() || r.starts_with('/')) {
+                p.at(&format!("{path}.http_get"), format!("`{url}` is not an http:// URL"));
             }
         }
     }

@@ -76,6 +76,18 @@ impl LinkError {
         }
     }
 
+    /// Whether the Modbus link itself failed (and has logged it), as opposed to one
+    /// request being refused or one value being unusable.
+    pub fn is_connection(&self) -> bool {
+        matches!(
+            self,
+            LinkError::Connect { .. }
+                | LinkError::Down { .. }
+                | LinkError::Timeout { .. }
+                | LinkError::Transport { .. }
+        )
+    }
+
     /// Every kind, for metrics that start at zero.
     pub const KINDS: &'static [&'static str] = &[
         "connect",

@@ -117,7 +117,12 @@ impl LoopTask {
     fn note_read(&mut self, read: &Result<(), LinkError>) {
         match read {
             Err(e) if !self.read_failing => {
-                tracing::warn!(r#loop = %self.config.name, error = %e, "cannot read the objective's tags");
+                // A dead link is logged once by the link, not once more by every loop on it.
+                if e.is_connection() {
+                    tracing::debug!(r#loop = %self.config.name, error = %e, "cannot read the objective's tags");
+                } else {
+                    tracing::warn!(r#loop = %self.config.name, error = %e, "cannot read the objective's tags");
+                }
                 self.read_failing = true;
             }
             Ok(()) if self.read_failing => {
@@ -139,6 +144,9 @@ impl LoopTask {
         let result = self.io.write(i, value).await;
         let input = &self.config.inputs[i].name;
         match (&result, self.write_failing[i]) {
+            (Err(e), false) if e.is_connection() => {
+                tracing::debug!(r#loop = %self.config.name, input = %input, error = %e, "setpoint write failed")
+            }
             (Err(e), false) => {
                 tracing::warn!(r#loop = %self.config.name, input = %input, error = %e, "setpoint write failed")
             }
