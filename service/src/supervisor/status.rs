@@ -19,6 +19,9 @@ pub struct LoopStatus {
     /// RFC 3339 UTC time of the last successful read of the objective.
     pub objective_at: Option<String>,
     pub ticks: u64,
+    /// Ticks skipped because they came too late after a stall (not in the interface
+    /// contract's list; an addition).
+    pub skipped_ticks: u64,
     pub inputs: Vec<InputStatus>,
 }
 
@@ -59,6 +62,7 @@ impl LoopStatus {
             objective: None,
             objective_at: None,
             ticks: 0,
+            skipped_ticks: 0,
             inputs: config
                 .inputs
                 .iter()

@@ -195,6 +195,7 @@ impl LoopTask {
             objective: c.objective(),
             objective_at: self.objective_at.map(|t| humantime::format_rfc3339_millis(t).to_string()),
             ticks: c.ticks(),
+            skipped_ticks: self.skipped_ticks,
             inputs,
         });
     }
