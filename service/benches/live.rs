@@ -10,49 +10,11 @@ use std::time::{Duration, Instant};
 
 use ridgeline::field::Links;
 use ridgeline::sim::server::PlantServer;
-use ridgeline::supervisor::{LoopTask, OnTick, schedule};
+use ridgeline::supervisor::{LoopTask, OnTick, Reporting, schedule};
 use tokio_util::sync::CancellationToken;
 
-const LOOPS_PER_PLC: usize = 10;
-const TICK_S: f64 = 0.1;
-
-fn plant_text() -> String {
-    let mut text = String::from("step_s = 0.01\n");
-    for k in 0..LOOPS_PER_PLC {
-        text += &format!("[[inputs]]\nname = \"u{k}\"\ninitial = 2.0\nholding_register = {}\n", 2 * k);
-        text += &format!(
-            "[[outputs]]\nname = \"y{k}\"\ninput_register = {}\nexpression = \"10 - 2 * (u{k} - 3)^2\"\nnoise_std = 0.001\n",
-            100 + 2 * k
-        );
-    }
-    text
-}
-
-fn config_text(ports: &[u16]) -> String {
-    let mut text = String::from("[service]\nlisten = \"127.0.0.1:0\"\n");
-    for (p, port) in ports.iter().enumerate() {
-        text += &format!("[links.plc{p}]\nmodbus_tcp = \"127.0.0.1:{port}\"\ntimeout_ms = 500\n");
-        for k in 0..LOOPS_PER_PLC {
-            text += &format!(
-                "[tags.y{p}_{k}]\nlink = \"plc{p}\"\ninput_register = {}\ntype = \"f32\"\n",
-                100 + 2 * k
-            );
-        }
-    }
-    for (p, _) in ports.iter().enumerate() {
-        for k in 0..LOOPS_PER_PLC {
-            text += &format!(
-                "[[loops]]\nname = \"loop-{p}-{k}\"\nobjective = \"y{p}_{k}\"\ndirection = \"maximize\"\ntick_s = {TICK_S}\n\
-                 start_mode = \"seeking\"\n[loops.filter]\nhighpass_hz = 0.1\n[loops.watchdog]\nstale_after_s = 1\n\
-                 [[loops.inputs]]\nname = \"u\"\nwrite = {{ link = \"plc{p}\", holding_register = {}, type = \"f32\" }}\n\
-                 limits = [0.0, 6.0]\nbounds = [0.0, 6.0]\nsafe = 2.0\nmax_rate_per_s = 1.0\ndither_amplitude = 0.1\n\
-                 dither_period_s = 2.0\ngain = 0.01\n",
-                2 * k
-            );
-        }
-    }
-    text
-}
+mod scale;
+use scale::{LOOPS_PER_PLC, TICK_S, config_text, plant_text};
 
 /// A loop's tick, timed.
 struct Timed {
@@ -61,6 +23,16 @@ struct Timed {
 }
 
 impl OnTick for Timed {
+    type Command = <LoopTask as OnTick>::Command;
+
+    async fn next_command(&mut self) -> Self::Command {
+        self.task.next_command().await
+    }
+
+    async fn on_command(&mut self, command: Self::Command) {
+        self.task.on_command(command).await
+    }
+
     async fn on_tick(&mut self, n: u64) {
         let started = Instant::now();
         self.task.tick(n).await;
@@ -129,10 +101,10 @@ fn main() -> anyhow::Result<()> {
     let cancel = CancellationToken::new();
     let skipped = Arc::new(Mutex::new(0u64));
     runtime.block_on(async {
-        let links = Links::new(&config)?;
+        let links = Links::new(&config, &Reporting::default())?;
         let mut handles = Vec::new();
         for index in 0..loops.min(config.loops.len()) {
-            let (task, _status) = LoopTask::new(&config, index, &links);
+            let (task, _handle) = LoopTask::new(&config, index, &links, Reporting::default());
             let mut timed = Timed { task, durations: durations.clone() };
             let (late, cancel, skipped) = (lateness.clone(), cancel.clone(), skipped.clone());
             handles.push(tokio::spawn(async move {

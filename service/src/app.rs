@@ -1,8 +1,9 @@
-//! The running service: links, one task per loop and the API, started together and
-//! stopped together. `run` and `demo` both go through [`App`].
+//! The running service: history, metrics, links, one task per loop and the API, started
+//! together and stopped in order. `run` and `demo` both go through [`App`].
 
 use std::future::Future;
 use std::net::SocketAddr;
+use std::path::PathBuf;
 use std::sync::Arc;
 use std::time::Duration;
 
@@ -10,10 +11,18 @@ use anyhow::Context;
 use tokio_util::sync::CancellationToken;
 use tokio_util::task::TaskTracker;
 
-use crate::api::{self, Statuses};
+use crate::api::{self, AccessList, ApiState};
 use crate::config::Config;
 use crate::field::Links;
-use crate::supervisor::{self, LoopTask};
+use crate::history::{History, Writer, WriterSettings};
+use crate::metrics::Metrics;
+use crate::report::Reporting;
+use crate::supervisor::{self, LoopHandle, LoopTask};
+
+/// Samples that may wait for the history writer before new ones are dropped (counted).
+const HISTORY_QUEUE: usize = 100_000;
+/// How long requests in flight may take to finish once the service stops.
+const API_DRAIN: Duration = Duration::from_secs(5);
 
 /// How to run beyond what the config says.
 #[derive(Debug, Clone)]
@@ -22,38 +31,57 @@ pub struct Options {
     pub speed: f64,
     /// Overrides `[service] listen`.
     pub listen: Option<SocketAddr>,
+    /// Overrides `[service] database`.
+    pub database: Option<PathBuf>,
 }
 
 impl Default for Options {
     fn default() -> Self {
-        Options { speed: 1.0, listen: None }
+        Options { speed: 1.0, listen: None, database: None }
     }
 }
 
-/// A service that is bound to its port but not yet running.
+/// A service that is bound to its port and has its database open, but is not yet running.
 pub struct App {
     listener: tokio::net::TcpListener,
     tasks: Vec<(LoopTask, Duration)>,
-    statuses: Statuses,
+    state: ApiState,
+    writer: Writer,
+    reporting: Reporting,
 }
 
 impl App {
-    /// Binds the API listener and prepares every loop; nothing talks to the plant yet.
+    /// Opens the history database, binds the API listener and prepares every loop;
+    /// nothing talks to the plant yet.
     pub async fn build(config: &Config, options: &Options) -> anyhow::Result<App> {
+        let database = options.database.clone().unwrap_or_else(|| config.service.database.clone());
+        let history = History::open(&database).await?;
+        let metrics = Arc::new(Metrics::new(config));
+        let settings =
+            WriterSettings { queue_capacity: HISTORY_QUEUE, retention_days: config.service.retention_days };
+        let (sender, writer) = history.writer(settings, Some(metrics.clone()));
+        let reporting = Reporting { metrics: Some(metrics.clone()), history: Some(sender) };
+
         let listen = options.listen.unwrap_or(config.service.listen);
         let listener = tokio::net::TcpListener::bind(listen)
             .await
             .with_context(|| format!("cannot listen on {listen} for the API"))?;
-        let links = Links::new(config).context("cannot set up the links")?;
+        let links = Links::new(config, &reporting).context("cannot set up the links")?;
         let mut tasks = Vec::new();
-        let mut statuses = Vec::new();
+        let mut handles: Vec<LoopHandle> = Vec::new();
         for index in 0..config.loops.len() {
-            let (task, status) = LoopTask::new(config, index, &links);
+            let (task, handle) = LoopTask::new(config, index, &links, reporting.clone());
             let period = Duration::from_secs_f64(task.tick_s() / options.speed);
             tasks.push((task, period));
-            statuses.push(status);
+            handles.push(handle);
         }
-        Ok(App { listener, tasks, statuses: Arc::new(statuses) })
+        let access = AccessList::new(&config.access, config.service.open_reads);
+        if access.is_empty() {
+            tracing::warn!("no [[access]] tokens in the config: every change through the API is refused");
+        }
+        let state =
+            ApiState { loops: Arc::new(handles), history: Some(history), metrics, access: Arc::new(access) };
+        Ok(App { listener, tasks, state, writer, reporting })
     }
 
     /// Where the API listens (useful with port 0).
@@ -61,28 +89,47 @@ impl App {
         Ok(self.listener.local_addr()?)
     }
 
-    /// The latest status of every loop.
-    pub fn statuses(&self) -> Statuses {
-        self.statuses.clone()
+    /// Handles on every loop: latest status, mode and bounds changes.
+    pub fn loops(&self) -> Arc<Vec<LoopHandle>> {
+        self.state.loops.clone()
     }
 
-    /// Runs until `shutdown` completes; then every loop writes its shutdown values and
-    /// the API stops accepting requests.
+    /// Runs until `shutdown` completes, then stops in order: the API stops taking
+    /// requests (those in flight get a few seconds), every loop writes its shutdown
+    /// values, and the history writer flushes what is queued.
     pub async fn run_until(self, shutdown: impl Future<Output = ()>) -> anyhow::Result<()> {
-        let cancel = CancellationToken::new();
+        let App { listener, tasks, state, writer, reporting } = self;
+        let writer_stop = CancellationToken::new();
+        let writing = tokio::spawn(writer.run(writer_stop.clone()));
+        reporting.event(
+            None,
+            "service_started",
+            serde_json::json!({"version": env!("CARGO_PKG_VERSION")}),
+            "system",
+        );
+
+        let stop = CancellationToken::new();
         let loops = TaskTracker::new();
-        for (task, period) in self.tasks {
-            loops.spawn(supervisor::run(task, period, cancel.clone(), |_| {}));
+        for (task, period) in tasks {
+            loops.spawn(supervisor::run(task, period, stop.clone()));
         }
         loops.close();
-        let api = axum::serve(self.listener, api::router(self.statuses))
-            .with_graceful_shutdown(cancel.clone().cancelled_owned());
+        let api =
+            axum::serve(listener, api::router(state)).with_graceful_shutdown(stop.clone().cancelled_owned());
         let api = tokio::spawn(async move { api.await });
+
         shutdown.await;
-        tracing::info!("stopping: loops write their shutdown setpoints");
-        cancel.cancel();
+        tracing::info!("stopping: loops write their shutdown setpoints, history is flushed");
+        stop.cancel();
         loops.wait().await;
-        api.await.context("the API task failed")?.context("the API server failed")?;
+        match tokio::time::timeout(API_DRAIN, api).await {
+            Ok(served) => served.context("the API task failed")?.context("the API server failed")?,
+            Err(_) => tracing::warn!("API requests still running after {API_DRAIN:?} were cut off"),
+        }
+        reporting.event(None, "service_stopped", serde_json::json!({}), "system");
+        drop(reporting);
+        writer_stop.cancel();
+        writing.await.context("the history writer failed")?;
         Ok(())
     }
 }

@@ -38,6 +38,18 @@ pub enum Command {
         /// Run plant and loops this many times faster than real time.
         #[arg(long, value_name = "X", default_value_t = crate::demo::DEFAULT_SPEED, value_parser = parse_positive)]
         speed: f64,
+        /// Keep the history in this SQLite file (default: a temporary folder, removed at the end).
+        #[arg(long, value_name = "FILE")]
+        database: Option<PathBuf>,
+    },
+    /// Print a new random access token and the [[access]] entry to paste into the config.
+    Token {
+        /// Who uses the token; recorded as the actor of every change made with it.
+        #[arg(long)]
+        name: String,
+        /// viewer (reads) or operator (reads and changes).
+        #[arg(long, value_parser = ["viewer", "operator"])]
+        role: String,
     },
     /// Run the service: every configured loop against the plant, until SIGINT or SIGTERM.
     Run {
@@ -87,7 +99,10 @@ const FAILED: u8 = 1;
 
 pub fn run(cli: Cli) -> ExitCode {
     match cli.command {
-        Command::Demo { listen, minutes, speed } => demo(crate::demo::Options { listen, speed, minutes }),
+        Command::Demo { listen, minutes, speed, database } => {
+            demo(crate::demo::Options { listen, speed, minutes, database })
+        }
+        Command::Token { name, role } => token(&name, &role),
         Command::Run { config } => serve(&config),
         Command::Sim { plant, listen, speed } => simulate(&plant, listen, speed),
         Command::Check { config } => check(&config),
@@ -279,6 +294,31 @@ fn simulate(path: &Path, listen: SocketAddr, speed: f64) -> ExitCode {
         server.run_until(stop_signal()).await?;
         Ok(())
     })
+}
+
+fn token(name: &str, role: &str) -> ExitCode {
+    let valid_name =
+        !name.trim().is_empty() && !name.chars().any(|c| c == '"' || c == '\\' || c.is_control());
+    if !valid_name {
+        eprintln!("--name must be non-empty, without quotes, backslashes or control characters");
+        return ExitCode::from(INVALID);
+    }
+    let token = match crate::api::new_token() {
+        Ok(t) => t,
+        Err(e) => {
+            eprintln!("cannot get random bytes from the operating system: {e}");
+            return ExitCode::from(FAILED);
+        }
+    };
+    println!("token (shown once; keep it where the script or person using it keeps secrets):");
+    println!("{token}");
+    println!();
+    println!("paste into the service config:");
+    println!("[[access]]");
+    println!("name = \"{name}\"");
+    println!("token_sha256 = \"{}\"", crate::api::token_sha256(&token));
+    println!("role = \"{role}\"");
+    ExitCode::SUCCESS
 }
 
 fn demo(options: crate::demo::Options) -> ExitCode {

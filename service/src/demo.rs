@@ -27,6 +27,8 @@ pub struct Options {
     pub listen: Option<SocketAddr>,
     pub speed: f64,
     pub minutes: Option<f64>,
+    /// Keeps the history here instead of in a temporary folder removed at the end.
+    pub database: Option<std::path::PathBuf>,
 }
 
 /// The embedded scenario, parsed.
@@ -48,7 +50,14 @@ pub async fn run(options: &Options, stop: impl Future<Output = ()>) -> anyhow::R
             *address = plant_addr.to_string();
         }
     }
-    let app = App::build(&config, &app::Options { speed: options.speed, listen: options.listen })
+    let scratch = tempfile::Builder::new()
+        .prefix("ridgeline-demo-")
+        .tempdir()
+        .context("cannot make a temporary folder")?;
+    let database = options.database.clone().unwrap_or_else(|| scratch.path().join("history.db"));
+    let app_options =
+        app::Options { speed: options.speed, listen: options.listen, database: Some(database.clone()) };
+    let app = App::build(&config, &app_options)
         .await
         .context("the demo's API needs a free port; pick one with --listen 127.0.0.1:PORT")?;
     println!(
@@ -58,16 +67,18 @@ pub async fn run(options: &Options, stop: impl Future<Output = ()>) -> anyhow::R
         options.speed
     );
     println!(
-        "Every {} s: each loop's state, objective, applied setpoint and distance to the plant's true optimum. Ctrl-C stops.",
-        PROGRESS_EVERY.as_secs()
+        "Every {} s: each loop's state, objective, applied setpoint and distance to the plant's true optimum. \
+         History in {}. Ctrl-C stops.",
+        PROGRESS_EVERY.as_secs(),
+        database.display()
     );
-    let statuses = app.statuses();
+    let loops = app.loops();
     let handle = server.handle();
     let (stop_all, stopped) = tokio::sync::oneshot::channel::<()>();
     let plant_task = tokio::spawn(server.run_until(async move {
         let _ = stopped.await;
     }));
-    let progress = progress_lines(&config, &plant, handle, statuses);
+    let progress = progress_lines(&config, &plant, handle, loops);
     let deadline = async {
         match options.minutes {
             Some(m) => tokio::time::sleep(Duration::from_secs_f64(m * 60.0)).await,
@@ -84,6 +95,7 @@ pub async fn run(options: &Options, stop: impl Future<Output = ()>) -> anyhow::R
     app.run_until(until).await?;
     let _ = stop_all.send(());
     plant_task.await.context("the simulated plant task failed")?.context("the simulated plant failed")?;
+    drop(scratch);
     Ok(())
 }
 
@@ -92,7 +104,7 @@ async fn progress_lines(
     config: &Config,
     plant: &PlantSpec,
     handle: PlantHandle,
-    statuses: crate::api::Statuses,
+    loops: std::sync::Arc<Vec<crate::supervisor::LoopHandle>>,
 ) {
     let mut truths: Vec<Option<Truth>> =
         (0..config.loops.len()).map(|i| Truth::new(config, i, plant).ok()).collect();
@@ -102,8 +114,8 @@ async fn progress_lines(
     loop {
         interval.tick().await;
         let (t_s, inputs) = handle.snapshot();
-        for (status, truth) in statuses.iter().zip(&mut truths) {
-            let status = status.borrow().clone();
+        for (handle, truth) in loops.iter().zip(&mut truths) {
+            let status = handle.status.borrow().clone();
             let mut line = format!(
                 "{:>6} wall  {:>9} plant  {:<20} {:<9} objective {:>9}",
                 human_duration(started.elapsed().as_secs_f64()),

@@ -14,11 +14,14 @@
 //! - [`expr`]: arithmetic expressions for objectives and plant outputs, parsed once.
 //! - [`field`]: links to the plant (Modbus/TCP, HTTP), the register codec, and each
 //!   loop's plan of reads and writes. The only place that talks to the plant.
+//! - [`history`]: the SQLite history store: samples, events, last estimates; one batched writer.
 //! - [`seek`]: the optimizer core: filters, the sine method, bounds and rate limits.
 //!   Pure and synchronous; time is the tick index.
 //! - [`sim`]: plant models: the plant-model file and a deterministic stepped model.
 //! - [`supervisor`]: the live loops: one task per loop on its tick, and the pure
 //!   per-tick decisions (`control`) that the rehearsal shares.
+//! - [`metrics`]: the Prometheus registry; every known series exists from the start.
+//! - [`report`]: where metrics and history events go, shared by links and loops.
 //! - [`rehearse`]: offline runs of configured loops against a plant model, scored
 //!   against the true optimum, with report, CSV and SVG plot.
 
@@ -29,7 +32,10 @@ pub mod config;
 pub mod demo;
 pub mod expr;
 pub mod field;
+pub mod history;
+pub mod metrics;
 pub mod rehearse;
+pub mod report;
 pub mod seek;
 pub mod sim;
 pub mod supervisor;

@@ -127,24 +127,65 @@ pub fn wait_until(what: &str, limit: std::time::Duration, mut condition: impl Fn
     }
 }
 
-/// A plain HTTP/1.1 GET on loopback: the status code and the body, or `None` when
-/// nothing answers.
-pub fn http_get(addr: std::net::SocketAddr, path: &str) -> Option<(u16, String)> {
+/// An answer from the service's API.
+#[derive(Debug, Clone)]
+pub struct HttpAnswer {
+    pub status: u16,
+    /// Header lines as they came, names lower-cased.
+    pub headers: Vec<(String, String)>,
+    pub body: String,
+}
+
+impl HttpAnswer {
+    pub fn header(&self, name: &str) -> Option<&str> {
+        self.headers.iter().find(|(n, _)| n == name).map(|(_, v)| v.as_str())
+    }
+
+    pub fn json(&self) -> serde_json::Value {
+        serde_json::from_str(&self.body).unwrap_or_else(|e| panic!("not JSON ({e}): {}", self.body))
+    }
+}
+
+/// A plain HTTP/1.1 request on loopback, or `None` when nothing answers.
+pub fn http_request(
+    addr: std::net::SocketAddr,
+    method: &str,
+    path: &str,
+    headers: &[(&str, &str)],
+    body: Option<&str>,
+) -> Option<HttpAnswer> {
     use std::io::{Read, Write};
     let mut stream = std::net::TcpStream::connect_timeout(&addr, std::time::Duration::from_secs(2)).ok()?;
-    stream.set_read_timeout(Some(std::time::Duration::from_secs(5))).ok()?;
-    write!(stream, "GET {path} HTTP/1.1\r\nHost: {addr}\r\nConnection: close\r\n\r\n").ok()?;
+    stream.set_read_timeout(Some(std::time::Duration::from_secs(10))).ok()?;
+    let mut request = format!("{method} {path} HTTP/1.1\r\nHost: {addr}\r\nConnection: close\r\n");
+    for (name, value) in headers {
+        request.push_str(&format!("{name}: {value}\r\n"));
+    }
+    if let Some(body) = body {
+        request.push_str(&format!("Content-Type: application/json\r\nContent-Length: {}\r\n", body.len()));
+    }
+    request.push_str("\r\n");
+    request.push_str(body.unwrap_or(""));
+    stream.write_all(request.as_bytes()).ok()?;
     let mut response = Vec::new();
     stream.read_to_end(&mut response).ok()?;
     let text = String::from_utf8_lossy(&response);
     let (head, body) = text.split_once("\r\n\r\n")?;
-    let status = head.split_whitespace().nth(1)?.parse().ok()?;
-    let body = if head.to_ascii_lowercase().contains("transfer-encoding: chunked") {
-        dechunk(body)
-    } else {
-        body.to_owned()
-    };
-    Some((status, body))
+    let mut lines = head.lines();
+    let status = lines.next()?.split_whitespace().nth(1)?.parse().ok()?;
+    let headers: Vec<(String, String)> = lines
+        .filter_map(|l| l.split_once(':'))
+        .map(|(n, v)| (n.trim().to_ascii_lowercase(), v.trim().to_owned()))
+        .collect();
+    let chunked = headers.iter().any(|(n, v)| n == "transfer-encoding" && v.contains("chunked"));
+    let body = if chunked { dechunk(body) } else { body.to_owned() };
+    Some(HttpAnswer { status, headers, body })
+}
+
+/// A plain HTTP/1.1 GET on loopback: the status code and the body, or `None` when
+/// nothing answers.
+pub fn http_get(addr: std::net::SocketAddr, path: &str) -> Option<(u16, String)> {
+    http_request(addr, "GET", path, &[], None).map(|a| (a.status, a.body))
 }
 
 fn dechunk(mut body: &str) -> String {

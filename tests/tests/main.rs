@@ -2,6 +2,7 @@
 //!
 //! Each check against an outside source names it beside the assertion.
 
+mod api;
 mod bad_input;
 mod check_command;
 mod classic_loop;
@@ -12,4 +13,5 @@ mod modbus_interop;
 mod plant_lag;
 mod properties;
 mod rehearse_command;
+mod rig;
 mod several_inputs;

@@ -1,67 +1,236 @@
-//! The HTTP API: loop status for people and scripts. One error type maps every failure
-//! to a status code and a JSON body.
+//! The HTTP API: loop status and changes, history, metrics, health and the status page.
+//! One error type maps every failure, the framework's own rejections included, to a
+//! status code and `{"error": {"code", "message"}}`.
+
+mod access;
+mod handlers;
+mod openapi;
+mod page;
 
 use std::sync::Arc;
 
-use axum::extract::{Path, State};
+use axum::extract::{FromRequest, FromRequestParts, MatchedPath, Request, State};
 use axum::http::StatusCode;
+use axum::http::request::Parts;
+use axum::middleware::{self, Next};
 use axum::response::{IntoResponse, Response};
-use axum::routing::get;
+use axum::routing::{get, put};
 use axum::{Json, Router};
-use tokio::sync::watch;
+use serde::de::DeserializeOwned;
 
-use crate::supervisor::status::LoopStatus;
+use crate::history::History;
+use crate::metrics::{Metrics, UNMATCHED_ROUTE};
+use crate::supervisor::LoopHandle;
+pub use access::{AccessList, Caller, new_token, token_sha256};
 
-/// The latest status of every loop, in config order.
-pub type Statuses = Arc<Vec<watch::Receiver<LoopStatus>>>;
+/// Everything the handlers need; cheap to clone.
+#[derive(Clone)]
+pub struct ApiState {
+    pub loops: Arc<Vec<LoopHandle>>,
+    pub history: Option<History>,
+    pub metrics: Arc<Metrics>,
+    pub access: Arc<AccessList>,
+}
 
-/// Every error the API answers with: `{"error": {"code", "message"}}`.
+impl ApiState {
+    fn find(&self, name: &str) -> Result<&LoopHandle, ApiError> {
+        self.loops
+            .iter()
+            .find(|l| l.config.name == name)
+            .ok_or_else(|| ApiError::NotFound(format!("there is no loop `{name}`")))
+    }
+}
+
+/// Every error the API answers with.
 #[derive(Debug, thiserror::Error)]
 pub enum ApiError {
-    #[error("there is no loop `{0}`")]
-    UnknownLoop(String),
-    #[error("there is no route {0}")]
-    UnknownRoute(String),
+    #[error("{0}")]
+    BadRequest(String),
+    #[error("{0}")]
+    Unauthorized(String),
+    #[error("{0}")]
+    Forbidden(String),
+    #[error("{0}")]
+    NotFound(String),
+    #[error("{0}")]
+    Conflict(String),
+    #[error("{0}")]
+    Unprocessable(String),
+    #[error("{0}")]
+    Unavailable(String),
+    /// The cause is logged; the answer says nothing internal.
+    #[error("internal error")]
+    Internal(String),
 }
 
 impl ApiError {
-    fn status(&self) -> (StatusCode, &'static str) {
+    fn status_and_code(&self) -> (StatusCode, &'static str) {
         match self {
-            ApiError::UnknownLoop(_) => (StatusCode::NOT_FOUND, "unknown_loop"),
-            ApiError::UnknownRoute(_) => (StatusCode::NOT_FOUND, "unknown_route"),
+            ApiError::BadRequest(_) => (StatusCode::BAD_REQUEST, "bad_request"),
+            ApiError::Unauthorized(_) => (StatusCode::UNAUTHORIZED, "unauthorized"),
+            ApiError::Forbidden(_) => (StatusCode::FORBIDDEN, "forbidden"),
+            ApiError::NotFound(_) => (StatusCode::NOT_FOUND, "not_found"),
+            ApiError::Conflict(_) => (StatusCode::CONFLICT, "conflict"),
+            ApiError::Unprocessable(_) => (StatusCode::UNPROCESSABLE_ENTITY, "unprocessable"),
+            ApiError::Unavailable(_) => (StatusCode::SERVICE_UNAVAILABLE, "not_ready"),
+            ApiError::Internal(_) => (StatusCode::INTERNAL_SERVER_ERROR, "internal"),
         }
     }
 }
 
 impl IntoResponse for ApiError {
     fn into_response(self) -> Response {
-        let (status, code) = self.status();
+        if let ApiError::Internal(cause) = &self {
+            tracing::error!(error = %cause, "API request failed");
+        }
+        let (status, code) = self.status_and_code();
         let body = serde_json::json!({"error": {"code": code, "message": self.to_string()}});
-        (status, Json(body)).into_response()
+        let mut response = (status, Json(body)).into_response();
+        if status == StatusCode::UNAUTHORIZED {
+            response.headers_mut().insert("www-authenticate", axum::http::HeaderValue::from_static("Bearer"));
+        }
+        response
     }
 }
 
-pub fn router(statuses: Statuses) -> Router {
+impl From<access::Denied> for ApiError {
+    fn from(d: access::Denied) -> Self {
+        match d {
+            access::Denied::Unauthenticated(m) => ApiError::Unauthorized(m),
+            access::Denied::Forbidden(m) => ApiError::Forbidden(m),
+        }
+    }
+}
+
+fn authorization(parts: &Parts) -> Option<&str> {
+    parts.headers.get(axum::http::header::AUTHORIZATION).and_then(|v| v.to_str().ok())
+}
+
+/// A caller allowed to read (`None` when reads are open).
+pub struct Reader(pub Option<Caller>);
+
+impl FromRequestParts<ApiState> for Reader {
+    type Rejection = ApiError;
+    async fn from_request_parts(parts: &mut Parts, state: &ApiState) -> Result<Self, ApiError> {
+        Ok(Reader(state.access.read(authorization(parts))?))
+    }
+}
+
+/// A caller allowed to change loops: an operator.
+pub struct Operator(pub Caller);
+
+impl FromRequestParts<ApiState> for Operator {
+    type Rejection = ApiError;
+    async fn from_request_parts(parts: &mut Parts, state: &ApiState) -> Result<Self, ApiError> {
+        Ok(Operator(state.access.write(authorization(parts))?))
+    }
+}
+
+/// A JSON body; bad JSON, wrong types and unknown fields are a 400 in the API's format.
+pub struct JsonBody<T>(pub T);
+
+impl<T: DeserializeOwned, S: Send + Sync> FromRequest<S> for JsonBody<T> {
+    type Rejection = ApiError;
+    async fn from_request(req: Request, state: &S) -> Result<Self, ApiError> {
+        let bytes = axum::body::Bytes::from_request(req, state)
+            .await
+            .map_err(|e| ApiError::BadRequest(format!("cannot read the request body: {e}")))?;
+        serde_json::from_slice(&bytes)
+            .map(JsonBody)
+            .map_err(|e| ApiError::BadRequest(format!("the body is not valid: {e}")))
+    }
+}
+
+/// Query parameters, with bad ones a 400 in the API's format.
+pub struct QueryParams<T>(pub T);
+
+impl<T: DeserializeOwned, S: Send + Sync> FromRequestParts<S> for QueryParams<T> {
+    type Rejection = ApiError;
+    async fn from_request_parts(parts: &mut Parts, _: &S) -> Result<Self, ApiError> {
+        axum::extract::Query::<T>::try_from_uri(&parts.uri)
+            .map(|q| QueryParams(q.0))
+            .map_err(|e| ApiError::BadRequest(format!("the query string is not valid: {}", e.body_text())))
+    }
+}
+
+/// Path parameters, with bad ones a 400 in the API's format.
+pub struct PathParams<T>(pub T);
+
+impl<T: DeserializeOwned + Send, S: Send + Sync> FromRequestParts<S> for PathParams<T> {
+    type Rejection = ApiError;
+    async fn from_request_parts(parts: &mut Parts, state: &S) -> Result<Self, ApiError> {
+        axum::extract::Path::<T>::from_request_parts(parts, state)
+            .await
+            .map(|p| PathParams(p.0))
+            .map_err(|e| ApiError::BadRequest(format!("the path is not valid: {}", e.body_text())))
+    }
+}
+
+/// Route templates of the API, in the order of the interface contract. The OpenAPI
+/// document and the router are both checked against this list.
+pub const ROUTES: &[(&str, &str)] = &[
+    ("GET", "/healthz"),
+    ("GET", "/readyz"),
+    ("GET", "/metrics"),
+    ("GET", "/api/v1/openapi.json"),
+    ("GET", "/api/v1/loops"),
+    ("GET", "/api/v1/loops/{loop}"),
+    ("PUT", "/api/v1/loops/{loop}/mode"),
+    ("PUT", "/api/v1/loops/{loop}/inputs/{input}/bounds"),
+    ("GET", "/api/v1/loops/{loop}/samples"),
+    ("GET", "/api/v1/events"),
+    ("GET", "/"),
+];
+
+pub fn router(state: ApiState) -> Router {
     Router::new()
-        .route("/healthz", get(|| async { "ok\n" }))
-        .route("/api/v1/loops", get(loops))
-        .route("/api/v1/loops/{loop}", get(one_loop))
-        .fallback(|uri: axum::http::Uri| async move { ApiError::UnknownRoute(uri.path().to_owned()) })
-        .with_state(statuses)
+        .route("/healthz", get(handlers::healthz))
+        .route("/readyz", get(handlers::readyz))
+        .route("/metrics", get(handlers::metrics))
+        .route("/api/v1/openapi.json", get(handlers::openapi))
+        .route("/api/v1/loops", get(handlers::loops))
+        .route("/api/v1/loops/{loop}", get(handlers::one_loop))
+        .route("/api/v1/loops/{loop}/mode", put(handlers::set_mode))
+        .route("/api/v1/loops/{loop}/inputs/{input}/bounds", put(handlers::set_bounds))
+        .route("/api/v1/loops/{loop}/samples", get(handlers::samples))
+        .route("/api/v1/events", get(handlers::events))
+        .route("/", get(page::status_page))
+        .route_layer(middleware::from_fn_with_state(state.clone(), count_request))
+        .fallback(unmatched)
+        .method_not_allowed_fallback(|| async {
+            ApiError::BadRequest("this route does not take that method".into())
+        })
+        .with_state(state)
 }
 
-async fn loops(State(statuses): State<Statuses>) -> Json<Vec<LoopStatus>> {
-    Json(statuses.iter().map(|s| s.borrow().clone()).collect())
+/// Counts requests by route template (never the raw path) and status.
+async fn count_request(State(state): State<ApiState>, request: Request, next: Next) -> Response {
+    let route = request.extensions().get::<MatchedPath>().map(|m| m.as_str().to_owned());
+    let response = next.run(request).await;
+    let route = route.as_deref().unwrap_or(UNMATCHED_ROUTE);
+    state.metrics.http_requests.with_label_values(&[route, response.status().as_str()]).inc();
+    response
 }
 
-async fn one_loop(
-    State(statuses): State<Statuses>,
-    Path(name): Path<String>,
-) -> Result<Json<LoopStatus>, ApiError> {
-    statuses
-        .iter()
-        .map(|s| s.borrow().clone())
-        .find(|s| s.name == name)
-        .map(Json)
-        .ok_or(ApiError::UnknownLoop(name))
+async fn unmatched(State(state): State<ApiState>, uri: axum::http::Uri) -> ApiError {
+    state.metrics.http_requests.with_label_values(&[UNMATCHED_ROUTE, "404"]).inc();
+    ApiError::NotFound(format!("there is no route {}", uri.path()))
+}
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+
+    #[test]
+    fn the_openapi_document_lists_every_route_of_the_router() {
+        let doc = openapi::document();
+        for (method, path) in ROUTES {
+            let op = &doc["paths"][*path][method.to_lowercase()];
+            assert!(op.is_object(), "{method} {path} is missing from the OpenAPI document");
+        }
+        assert_eq!(
+            doc["paths"].as_object().unwrap().len(),
+            ROUTES.iter().map(|r| r.1).collect::<std::collections::HashSet<_>>().len()
+        );
+    }
 }

@@ -239,6 +239,25 @@ impl InputConfig {
     pub fn dither_hz(&self) -> f64 {
         1.0 / self.dither_period_s
     }
+
+    /// Whether `bounds` may replace this input's operating bounds at run time: finite,
+    /// not empty, inside the limits, and wide enough for the dither.
+    pub fn check_bounds(&self, bounds: Range) -> Result<(), String> {
+        if !(bounds.min.is_finite() && bounds.max.is_finite()) {
+            Err("min and max must be finite numbers".into())
+        } else if bounds.min >= bounds.max {
+            Err(format!("{bounds} is empty: min must be below max"))
+        } else if !(self.limits.contains(bounds.min) && self.limits.contains(bounds.max)) {
+            Err(format!("{bounds} reaches outside the limits {}", self.limits))
+        } else if bounds.span() < 2.0 * self.dither_amplitude {
+            Err(format!(
+                "{bounds} is narrower than twice the dither amplitude ({})",
+                show(2.0 * self.dither_amplitude)
+            ))
+        } else {
+            Ok(())
+        }
+    }
 }
 
 /// The holding register a setpoint is written to.

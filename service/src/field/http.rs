@@ -4,6 +4,7 @@
 use std::time::Duration;
 
 use super::error::LinkError;
+use crate::report::Reporting;
 
 /// Largest document accepted; a reading endpoint that sends more is misbehaving.
 const MAX_BODY_BYTES: usize = 1 << 20;
@@ -13,25 +14,33 @@ pub struct HttpLink {
     name: String,
     url: String,
     client: reqwest::Client,
+    reporting: Reporting,
 }
 
 impl HttpLink {
-    pub fn new(name: &str, url: &str, timeout: Duration) -> Result<Self, LinkError> {
+    pub fn new(name: &str, url: &str, timeout: Duration, reporting: Reporting) -> Result<Self, LinkError> {
         let client = reqwest::Client::builder().timeout(timeout).build().map_err(|e| LinkError::Http {
             link: name.to_owned(),
             url: url.to_owned(),
             reason: e.to_string(),
         })?;
-        Ok(HttpLink { name: name.to_owned(), url: url.to_owned(), client })
+        Ok(HttpLink { name: name.to_owned(), url: url.to_owned(), client, reporting })
     }
 
     pub fn name(&self) -> &str {
         &self.name
     }
 
-    /// Fetches the document once.
-    #[tracing::instrument(level = "trace", skip_all, fields(link = %self.name))]
+    /// Fetches the document once, counting the request in the metrics.
     pub async fn fetch(&self) -> Result<serde_json::Value, LinkError> {
+        let started = std::time::Instant::now();
+        let result = self.get().await;
+        self.reporting.link_request(&self.name, started.elapsed().as_secs_f64(), result.as_ref().err());
+        result
+    }
+
+    #[tracing::instrument(level = "trace", skip_all, fields(link = %self.name))]
+    async fn get(&self) -> Result<serde_json::Value, LinkError> {
         let http =
             |reason: String| LinkError::Http { link: self.name.clone(), url: self.url.clone(), reason };
         let response = self.client.get(&self.url).send().await.map_err(|e| http(describe(&e)))?;

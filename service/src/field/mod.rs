@@ -10,6 +10,7 @@ use std::collections::HashMap;
 use std::time::Duration;
 
 use crate::config::{Codec, Config, LinkKind, RegisterSpace, TagSource};
+use crate::report::Reporting;
 pub use error::{Function, LinkError};
 use http::HttpLink;
 use modbus::ModbusLink;
@@ -27,18 +28,20 @@ pub struct Links {
 
 impl Links {
     /// Handles on every link of a validated config; nothing connects yet.
-    pub fn new(config: &Config) -> Result<Self, LinkError> {
+    pub fn new(config: &Config, reporting: &Reporting) -> Result<Self, LinkError> {
         let mut links = Links::default();
         for link in &config.links {
             let timeout = Duration::from_millis(link.timeout_ms);
             match &link.kind {
                 LinkKind::ModbusTcp { address, unit } => {
-                    links
-                        .modbus
-                        .insert(link.name.clone(), ModbusLink::new(&link.name, address, *unit, timeout));
+                    let m = ModbusLink::reporting_to(&link.name, address, *unit, timeout, reporting.clone());
+                    links.modbus.insert(link.name.clone(), m);
                 }
                 LinkKind::HttpGet { url } => {
-                    links.http.insert(link.name.clone(), HttpLink::new(&link.name, url, timeout)?);
+                    links.http.insert(
+                        link.name.clone(),
+                        HttpLink::new(&link.name, url, timeout, reporting.clone())?,
+                    );
                 }
             }
         }

@@ -12,6 +12,7 @@ use tokio_modbus::{ExceptionCode, Slave};
 
 use super::error::{Function, LinkError};
 use crate::config::RegisterSpace;
+use crate::report::Reporting;
 
 /// First wait before reconnecting after a failure; doubles per failure up to the cap.
 const BACKOFF_FIRST: Duration = Duration::from_millis(200);
@@ -28,6 +29,7 @@ struct Inner {
     address: String,
     unit: u8,
     timeout: Duration,
+    reporting: Reporting,
     /// Held for the whole of a request, so requests on a link never overlap.
     connection: Mutex<Connection>,
 }
@@ -87,12 +89,24 @@ impl std::fmt::Debug for ModbusLink {
 impl ModbusLink {
     /// A link to `address` (`host:port`); nothing is connected until the first request.
     pub fn new(name: &str, address: &str, unit: u8, timeout: Duration) -> Self {
+        Self::reporting_to(name, address, unit, timeout, Reporting::default())
+    }
+
+    /// A link that counts its requests in the metrics and records going down and up.
+    pub fn reporting_to(
+        name: &str,
+        address: &str,
+        unit: u8,
+        timeout: Duration,
+        reporting: Reporting,
+    ) -> Self {
         ModbusLink {
             inner: Arc::new(Inner {
                 name: name.to_owned(),
                 address: address.to_owned(),
                 unit,
                 timeout,
+                reporting,
                 connection: Mutex::default(),
             }),
         }
@@ -124,10 +138,20 @@ impl ModbusLink {
             }
         };
         let (function, address) = (request.function(), request.address());
-        let failed = match timeout(inner.timeout, request.send(context)).await {
-            Ok(Ok(Ok(words))) => return Ok(words),
+        let started = Instant::now();
+        let answer = timeout(inner.timeout, request.send(context)).await;
+        let seconds = started.elapsed().as_secs_f64();
+        let failed = match answer {
+            Ok(Ok(Ok(words))) => {
+                inner.reporting.link_request(&inner.name, seconds, None);
+                return Ok(words);
+            }
             // An exception is a proper answer: the connection stays up.
-            Ok(Ok(Err(code))) => return Err(exception(&inner.name, function, address, code)),
+            Ok(Ok(Err(code))) => {
+                let e = exception(&inner.name, function, address, code);
+                inner.reporting.link_request(&inner.name, seconds, Some(&e));
+                return Err(e);
+            }
             Ok(Err(e)) => {
                 LinkError::Transport { link: inner.name.clone(), function, address, reason: e.to_string() }
             }
@@ -138,6 +162,7 @@ impl ModbusLink {
                 timeout_ms: inner.timeout.as_millis() as u64,
             },
         };
+        inner.reporting.link_request(&inner.name, seconds, Some(&failed));
         // After a transport error or a timeout the stream may still deliver a stale
         // answer, so it is dropped and a fresh one is opened.
         connection.context = None;
@@ -150,10 +175,10 @@ impl ModbusLink {
         if let Some(at) = connection.retry_at {
             let now = Instant::now();
             if now < at {
-                return Err(LinkError::Down {
-                    link: inner.name.clone(),
-                    retry_in_ms: (at - now).as_millis() as u64,
-                });
+                let down =
+                    LinkError::Down { link: inner.name.clone(), retry_in_ms: (at - now).as_millis() as u64 };
+                inner.reporting.link_request(&inner.name, 0.0, Some(&down));
+                return Err(down);
             }
         }
         let attempt = async {
@@ -175,6 +200,8 @@ impl ModbusLink {
             Ok(context) => {
                 if connection.failures > 0 {
                     tracing::info!(link = %inner.name, address = %inner.address, "link connected again");
+                    let detail = serde_json::json!({"link": inner.name, "address": inner.address});
+                    inner.reporting.event(None, "link_up", detail, "system");
                 } else {
                     tracing::info!(link = %inner.name, address = %inner.address, "link connected");
                 }
@@ -185,6 +212,7 @@ impl ModbusLink {
             Err(reason) => {
                 let error =
                     LinkError::Connect { link: inner.name.clone(), address: inner.address.clone(), reason };
+                inner.reporting.link_request(&inner.name, 0.0, Some(&error));
                 self.note_failure(connection, &error);
                 Err(error)
             }
@@ -196,6 +224,8 @@ impl ModbusLink {
     fn note_failure(&self, connection: &mut Connection, error: &LinkError) {
         if connection.failures == 0 {
             tracing::warn!(link = %self.inner.name, error = %error, "link down; retrying with backoff");
+            let detail = serde_json::json!({"link": self.inner.name, "error": error.to_string()});
+            self.inner.reporting.event(None, "link_down", detail, "system");
         } else {
             tracing::debug!(link = %self.inner.name, error = %error, "link still down");
         }

@@ -25,7 +25,7 @@ pub struct Move {
 }
 
 /// An extremum-seeking method.
-pub trait Method: Send + std::fmt::Debug {
+pub trait Method: Send + Sync + std::fmt::Debug {
     /// Feeds the objective read at `tick` (which answers the setpoints written at
     /// `tick - 1`) and fills one [`Move`] per input.
     fn step(&mut self, tick: u64, objective: f64, moves: &mut [Move]);

@@ -5,4 +5,4 @@ pub mod control;
 pub mod status;
 mod task;
 
-pub use task::{LoopTask, OnTick, run, schedule};
+pub use task::{Command, CommandError, LoopHandle, LoopTask, OnTick, Reporting, run, schedule};

@@ -4,22 +4,88 @@
 use std::sync::Arc;
 use std::time::{Duration, SystemTime};
 
-use tokio::sync::watch;
+use tokio::sync::{mpsc, oneshot, watch};
 use tokio::time::{Instant, MissedTickBehavior};
 use tokio_util::sync::CancellationToken;
 
 use super::control::{Control, TickReport};
 use super::status::{InputStatus, LoopStatus};
-use crate::config::{Config, LoopConfig};
+use crate::config::{Config, LoopConfig, Mode, Range};
 use crate::field::{LinkError, Links, LoopIo};
+use crate::history::{InputSample, SampleRecord, now_ms};
+pub use crate::report::Reporting;
+
+/// Why a running loop refused a command.
+#[derive(Debug, Clone, PartialEq, thiserror::Error)]
+pub enum CommandError {
+    /// Not possible in the loop's current state (an HTTP 409).
+    #[error("{0}")]
+    Conflict(String),
+}
+
+/// A change asked of a running loop through its [`LoopHandle`]; it takes effect at the
+/// loop's next tick.
+pub enum Command {
+    SetMode {
+        mode: Mode,
+        actor: String,
+        reply: oneshot::Sender<Result<LoopStatus, CommandError>>,
+    },
+    SetBounds {
+        input: usize,
+        bounds: Range,
+        actor: String,
+        reply: oneshot::Sender<Result<LoopStatus, CommandError>>,
+    },
+}
+
+/// The API's handle on a running loop: its config, its latest status, and a way to
+/// change its mode and bounds.
+#[derive(Clone)]
+pub struct LoopHandle {
+    pub config: Arc<LoopConfig>,
+    pub status: watch::Receiver<LoopStatus>,
+    commands: mpsc::Sender<Command>,
+}
+
+impl LoopHandle {
+    /// Asks for `mode`; answers with the status once the loop has taken the change.
+    pub async fn set_mode(&self, mode: Mode, actor: &str) -> Result<LoopStatus, CommandError> {
+        self.ask(|reply| Command::SetMode { mode, actor: actor.to_owned(), reply }).await
+    }
+
+    /// Sets input `input`'s operating bounds (already checked against the limits).
+    pub async fn set_bounds(
+        &self,
+        input: usize,
+        bounds: Range,
+        actor: &str,
+    ) -> Result<LoopStatus, CommandError> {
+        self.ask(|reply| Command::SetBounds { input, bounds, actor: actor.to_owned(), reply }).await
+    }
+
+    async fn ask(
+        &self,
+        command: impl FnOnce(oneshot::Sender<Result<LoopStatus, CommandError>>) -> Command,
+    ) -> Result<LoopStatus, CommandError> {
+        let stopping = || CommandError::Conflict(format!("loop {} is stopping", self.config.name));
+        let (reply, answer) = oneshot::channel();
+        self.commands.send(command(reply)).await.map_err(|_| stopping())?;
+        answer.await.map_err(|_| stopping())?
+    }
+}
 
 /// One loop bound to its links.
 pub struct LoopTask {
     config: Arc<LoopConfig>,
+    name: Arc<str>,
+    input_names: Vec<Arc<str>>,
     control: Control,
     io: LoopIo,
     values: Vec<f64>,
     status: watch::Sender<LoopStatus>,
+    commands: mpsc::Receiver<Command>,
+    reporting: Reporting,
     objective_at: Option<SystemTime>,
     last_tick: Option<u64>,
     skipped_ticks: u64,
@@ -29,25 +95,30 @@ pub struct LoopTask {
 }
 
 impl LoopTask {
-    /// The task for loop `index` of a validated config, and a receiver of its status.
-    pub fn new(config: &Config, index: usize, links: &Links) -> (Self, watch::Receiver<LoopStatus>) {
+    /// The task for loop `index` of a validated config, and the API's handle on it.
+    pub fn new(config: &Config, index: usize, links: &Links, reporting: Reporting) -> (Self, LoopHandle) {
         let loop_config = Arc::new(config.loops[index].clone());
         let control = Control::new(&loop_config);
         let io = LoopIo::new(config, links, index, control.objective_names());
         let (status, receiver) = watch::channel(LoopStatus::initial(&loop_config));
+        let (commands_in, commands) = mpsc::channel(16);
         let task = LoopTask {
             values: vec![f64::NAN; control.objective_names().len()],
             write_failing: vec![false; loop_config.inputs.len()],
-            config: loop_config,
+            name: Arc::from(loop_config.name.as_str()),
+            input_names: loop_config.inputs.iter().map(|i| Arc::from(i.name.as_str())).collect(),
+            config: loop_config.clone(),
             control,
             io,
             status,
+            commands,
+            reporting,
             objective_at: None,
             last_tick: None,
             skipped_ticks: 0,
             read_failing: false,
         };
-        (task, receiver)
+        (task, LoopHandle { config: loop_config, status: receiver, commands: commands_in })
     }
 
     pub fn name(&self) -> &str {
@@ -58,19 +129,19 @@ impl LoopTask {
         self.config.tick_s
     }
 
-    /// Ticks that came too late after a stall and were skipped.
+    /// Ticks skipped because they came too late after a stall.
     pub fn skipped_ticks(&self) -> u64 {
         self.skipped_ticks
     }
 
     /// One tick at tick index `n`: start if not started, read the tags, let the control
-    /// decide, write the setpoints, publish the status.
+    /// decide, write the setpoints, publish and record.
     pub async fn tick(&mut self, n: u64) -> TickReport {
         if let Some(last) = self.last_tick
             && n > last + 1
         {
             self.skipped_ticks += n - last - 1;
-            tracing::debug!(r#loop = %self.config.name, skipped = n - last - 1, "late ticks skipped");
+            tracing::debug!(r#loop = %self.name, skipped = n - last - 1, "late ticks skipped");
         }
         self.last_tick = Some(n);
         if !self.control.is_started() {
@@ -86,32 +157,47 @@ impl LoopTask {
             self.write_applied().await;
         }
         self.publish();
+        self.record(&report);
         report
+    }
+
+    /// Reads every input's setpoint back from the PLC; `None` when any cannot be read.
+    async fn read_back(&self) -> Result<Vec<Option<f64>>, LinkError> {
+        let mut values = Vec::with_capacity(self.config.inputs.len());
+        for i in 0..self.config.inputs.len() {
+            values.push(Some(self.io.read_back(i).await?));
+        }
+        Ok(values)
     }
 
     /// Starts from the setpoints in the PLC; waits for a later tick when they cannot be
     /// read, rather than writing anything without knowing where the process stands.
     async fn try_start(&mut self) {
-        let mut read_back = Vec::with_capacity(self.config.inputs.len());
-        for i in 0..self.config.inputs.len() {
-            match self.io.read_back(i).await {
-                Ok(v) => read_back.push(Some(v)),
-                Err(e) => {
-                    tracing::debug!(r#loop = %self.config.name, error = %e, "setpoints not readable yet; start waits");
-                    return;
-                }
+        let read_back = match self.read_back().await {
+            Ok(v) => v,
+            Err(e) => {
+                tracing::debug!(r#loop = %self.name, error = %e, "setpoints not readable yet; start waits");
+                return;
             }
-        }
+        };
         self.control.start(&read_back);
-        let estimates: Vec<String> = self
-            .config
-            .inputs
-            .iter()
-            .zip(self.control.inputs())
-            .zip(&read_back)
-            .map(|((c, i), r)| format!("{}={} (read back {})", c.name, i.estimate, r.unwrap_or(f64::NAN)))
-            .collect();
-        tracing::info!(r#loop = %self.config.name, mode = %self.control.mode(), start = %estimates.join(", "), "loop started");
+        let by_input = |values: &mut dyn Iterator<Item = f64>| -> serde_json::Map<String, serde_json::Value> {
+            self.config
+                .inputs
+                .iter()
+                .zip(values)
+                .map(|(c, v)| (c.name.clone(), serde_json::json!(v)))
+                .collect()
+        };
+        let estimates = by_input(&mut self.control.inputs().iter().map(|i| i.estimate));
+        let read = by_input(&mut read_back.iter().map(|v| v.unwrap_or(f64::NAN)));
+        tracing::info!(r#loop = %self.name, mode = %self.control.mode(), estimates = %serde_json::Value::Object(estimates.clone()), "loop started");
+        self.reporting.event(
+            Some(&self.name),
+            "loop_started",
+            serde_json::json!({"mode": self.control.mode().as_str(), "estimates": estimates, "read_back": read}),
+            "system",
+        );
     }
 
     fn note_read(&mut self, read: &Result<(), LinkError>) {
@@ -119,14 +205,14 @@ impl LoopTask {
             Err(e) if !self.read_failing => {
                 // A dead link is logged once by the link, not once more by every loop on it.
                 if e.is_connection() {
-                    tracing::debug!(r#loop = %self.config.name, error = %e, "cannot read the objective's tags");
+                    tracing::debug!(r#loop = %self.name, error = %e, "cannot read the objective's tags");
                 } else {
-                    tracing::warn!(r#loop = %self.config.name, error = %e, "cannot read the objective's tags");
+                    tracing::warn!(r#loop = %self.name, error = %e, "cannot read the objective's tags");
                 }
                 self.read_failing = true;
             }
             Ok(()) if self.read_failing => {
-                tracing::info!(r#loop = %self.config.name, "reading the objective's tags again");
+                tracing::info!(r#loop = %self.name, "reading the objective's tags again");
                 self.read_failing = false;
             }
             _ => {}
@@ -134,8 +220,8 @@ impl LoopTask {
     }
 
     async fn write_applied(&mut self) {
-        let applied: Vec<f64> = self.control.inputs().iter().map(|i| i.applied).collect();
-        for (i, value) in applied.into_iter().enumerate() {
+        for i in 0..self.config.inputs.len() {
+            let value = self.control.inputs()[i].applied;
             self.write_input(i, value).await;
         }
     }
@@ -145,26 +231,107 @@ impl LoopTask {
         let input = &self.config.inputs[i].name;
         match (&result, self.write_failing[i]) {
             (Err(e), false) if e.is_connection() => {
-                tracing::debug!(r#loop = %self.config.name, input = %input, error = %e, "setpoint write failed")
+                tracing::debug!(r#loop = %self.name, input = %input, error = %e, "setpoint write failed")
             }
             (Err(e), false) => {
-                tracing::warn!(r#loop = %self.config.name, input = %input, error = %e, "setpoint write failed")
+                tracing::warn!(r#loop = %self.name, input = %input, error = %e, "setpoint write failed")
             }
             (Ok(()), true) => {
-                tracing::info!(r#loop = %self.config.name, input = %input, "setpoint writes work again")
+                tracing::info!(r#loop = %self.name, input = %input, "setpoint writes work again")
             }
             _ => {}
         }
         self.write_failing[i] = result.is_err();
     }
 
+    /// Applies a command between ticks; it shows in the next tick's decisions.
+    async fn apply(&mut self, command: Command) {
+        match command {
+            Command::SetMode { mode, actor, reply } => {
+                let from = self.control.mode();
+                let starts_writing = matches!(mode, Mode::Seeking | Mode::Holding)
+                    && !matches!(from, Mode::Seeking | Mode::Holding)
+                    && self.control.is_started();
+                // A loop that starts writing restarts from what the PLC holds now.
+                let read_back = if starts_writing {
+                    match self.read_back().await {
+                        Ok(v) => v,
+                        Err(e) => {
+                            let why = format!(
+                                "cannot switch to {mode}: the setpoints cannot be read back from the PLC ({e})"
+                            );
+                            let _ = reply.send(Err(CommandError::Conflict(why)));
+                            return;
+                        }
+                    }
+                } else {
+                    Vec::new()
+                };
+                self.control.set_mode(mode, &read_back);
+                if from != mode {
+                    tracing::info!(r#loop = %self.name, from = %from, to = %mode, actor = %actor, "mode changed");
+                    self.reporting.event(
+                        Some(&self.name),
+                        "mode_changed",
+                        serde_json::json!({"from": from.as_str(), "to": mode.as_str()}),
+                        &actor,
+                    );
+                }
+                self.publish();
+                let _ = reply.send(Ok(self.status.borrow().clone()));
+            }
+            Command::SetBounds { input, bounds, actor, reply } => {
+                let Some(before) = self.control.inputs().get(input).map(|i| i.guard.bounds) else {
+                    let _ = reply.send(Err(CommandError::Conflict(format!(
+                        "loop {} has no input {input}",
+                        self.name
+                    ))));
+                    return;
+                };
+                self.control.set_bounds(input, bounds);
+                let name = &self.config.inputs[input].name;
+                tracing::info!(r#loop = %self.name, input = %name, from = %before, to = %bounds, actor = %actor, "bounds changed");
+                self.reporting.event(
+                    Some(&self.name),
+                    "bounds_changed",
+                    serde_json::json!({
+                        "input": name,
+                        "from": {"min": before.min, "max": before.max},
+                        "to": {"min": bounds.min, "max": bounds.max},
+                    }),
+                    &actor,
+                );
+                self.publish();
+                let _ = reply.send(Ok(self.status.borrow().clone()));
+            }
+        }
+    }
+
     /// Writes the `on_shutdown` values of a loop that is writing; called once on stop.
     pub async fn shutdown(&mut self) {
-        let Some(values) = self.control.shutdown_values() else { return };
-        for (i, value) in values.into_iter().enumerate() {
-            self.write_input(i, value).await;
-        }
-        tracing::info!(r#loop = %self.config.name, on_shutdown = %self.config.on_shutdown, "shutdown setpoints written");
+        let written = match self.control.shutdown_values() {
+            Some(values) => {
+                for (i, &value) in values.iter().enumerate() {
+                    self.write_input(i, value).await;
+                }
+                tracing::info!(r#loop = %self.name, on_shutdown = %self.config.on_shutdown, "shutdown setpoints written");
+                let by_input: serde_json::Map<_, _> = self
+                    .config
+                    .inputs
+                    .iter()
+                    .zip(&values)
+                    .map(|(c, v)| (c.name.clone(), serde_json::json!(v)))
+                    .collect();
+                serde_json::Value::Object(by_input)
+            }
+            None => serde_json::Value::Null,
+        };
+        self.reporting.event(
+            Some(&self.name),
+            "loop_stopped",
+            serde_json::json!({"on_shutdown": self.config.on_shutdown.as_str(), "written": written}),
+            "system",
+        );
     }
 
     fn publish(&self) {
@@ -199,40 +366,101 @@ impl LoopTask {
             inputs,
         });
     }
+
+    /// Metrics and a history sample for the tick just done.
+    fn record(&self, report: &TickReport) {
+        let c = &self.control;
+        if let Some(m) = &self.reporting.metrics {
+            if let Some(j) = report.objective {
+                m.objective.with_label_values(&[&*self.name]).set(j);
+            }
+            for (name, i) in self.input_names.iter().zip(c.inputs()) {
+                m.setpoint.with_label_values(&[&*self.name, name]).set(i.applied);
+                m.estimate.with_label_values(&[&*self.name, name]).set(i.estimate);
+                m.gradient.with_label_values(&[&*self.name, name]).set(i.gradient);
+            }
+            m.set_state(&self.name, c.state());
+        }
+        if let Some(h) = &self.reporting.history {
+            h.sample(SampleRecord {
+                loop_name: self.name.clone(),
+                at_ms: now_ms(),
+                objective: report.objective,
+                state: c.state().as_str(),
+                inputs: self
+                    .input_names
+                    .iter()
+                    .zip(c.inputs())
+                    .map(|(name, i)| InputSample {
+                        name: name.clone(),
+                        applied: i.applied,
+                        estimate: i.estimate,
+                        gradient: i.gradient,
+                    })
+                    .collect(),
+            });
+        }
+    }
 }
 
-/// Something done once per tick, given the tick index.
+/// A job done once per tick, which may also take commands between ticks.
 pub trait OnTick {
+    type Command: Send;
     fn on_tick(&mut self, n: u64) -> impl Future<Output = ()> + Send;
+    /// Waits for the next command; must be cancel-safe (it races the clock).
+    fn next_command(&mut self) -> impl Future<Output = Self::Command> + Send;
+    fn on_command(&mut self, command: Self::Command) -> impl Future<Output = ()> + Send;
 }
 
 impl OnTick for LoopTask {
+    type Command = Command;
+
     async fn on_tick(&mut self, n: u64) {
         self.tick(n).await;
+    }
+
+    async fn next_command(&mut self) -> Command {
+        match self.commands.recv().await {
+            Some(c) => c,
+            // No handle is left: nobody will ever send one.
+            None => std::future::pending().await,
+        }
+    }
+
+    async fn on_command(&mut self, command: Command) {
+        self.apply(command).await;
     }
 }
 
 /// Ticks a loop every `period` of wall time until cancelled, then writes its shutdown
-/// values. `observe` hears how late each tick started.
-pub async fn run(
-    mut task: LoopTask,
-    period: Duration,
-    cancel: CancellationToken,
-    observe: impl FnMut(Duration),
-) {
-    schedule(period, &cancel, observe, &mut task).await;
+/// values. Tick lateness goes to the metrics.
+pub async fn run(mut task: LoopTask, period: Duration, cancel: CancellationToken) {
+    let lateness =
+        task.reporting.metrics.as_ref().map(|m| m.tick_lateness_seconds.with_label_values(&[task.name()]));
+    schedule(
+        period,
+        &cancel,
+        |late| {
+            if let Some(h) = &lateness {
+                h.observe(late.as_secs_f64());
+            }
+        },
+        &mut task,
+    )
+    .await;
     task.shutdown().await;
 }
 
-/// Calls `work` with the tick index every `period` until cancelled. A tick more than half
-/// a period late (after a stall) is skipped, never queued up: the index follows the wall
-/// clock, so the dither stays in phase with time, and the gap in the indices counts the
-/// skipped ticks. `observe` hears the lateness of each tick that runs.
-pub async fn schedule(
+/// Calls `work` with the tick index every `period` until cancelled, and hands it commands
+/// as they come between ticks. A tick more than half a period late (after a stall) is
+/// skipped, never queued up: the index follows the wall clock, so the dither stays in
+/// phase with time, and the gap in the indices counts the skipped ticks. `observe`
+/// hears the lateness of each tick that runs.
+pub async fn schedule<W: OnTick>(
     period: Duration,
     cancel: &CancellationToken,
     mut observe: impl FnMut(Duration),
-    work: &mut impl OnTick,
+    work: &mut W,
 ) {
     let start = Instant::now();
     let mut interval = tokio::time::interval_at(start, period);
@@ -252,6 +480,7 @@ pub async fn schedule(
                 let n = ((at - start).as_secs_f64() / period.as_secs_f64()).round() as u64;
                 work.on_tick(n).await;
             }
+            command = work.next_command() => work.on_command(command).await,
         }
     }
 }
@@ -269,6 +498,14 @@ mod tests {
     }
 
     impl OnTick for Recorder {
+        type Command = ();
+
+        async fn next_command(&mut self) {
+            std::future::pending().await
+        }
+
+        async fn on_command(&mut self, (): ()) {}
+
         async fn on_tick(&mut self, n: u64) {
             self.seen.push(n);
             if n == self.stall_at {

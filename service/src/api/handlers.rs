@@ -1,0 +1,247 @@
+//! The route handlers: thin, each one checks access, finds the loop, and hands over to
+//! the loop task or the history store.
+
+use axum::Json;
+use axum::body::Body;
+use axum::extract::State;
+use axum::http::{HeaderMap, header};
+use axum::response::{IntoResponse, Response};
+use futures_util::StreamExt;
+use serde::Deserialize;
+use serde_json::{Value, json};
+
+use super::{ApiError, ApiState, JsonBody, Operator, PathParams, QueryParams, Reader, openapi};
+use crate::config::{Mode, Range};
+use crate::history::{EventRow, SampleRow, parse_rfc3339, rfc3339};
+use crate::supervisor::CommandError;
+use crate::supervisor::status::LoopStatus;
+
+/// Samples per request when none is asked for, and the most one request may ask for.
+pub const SAMPLES_DEFAULT: u32 = 1000;
+pub const SAMPLES_MAX_JSON: u32 = 10_000;
+/// CSV is streamed, so an export may be much longer than a JSON page.
+pub const SAMPLES_MAX_CSV: u32 = 1_000_000;
+pub const EVENTS_DEFAULT: u32 = 100;
+pub const EVENTS_MAX: u32 = 10_000;
+
+pub async fn healthz() -> &'static str {
+    "ok\n"
+}
+
+pub async fn readyz(State(state): State<ApiState>) -> Result<Json<Value>, ApiError> {
+    if let Some(h) = &state.history {
+        h.check_writable()
+            .await
+            .map_err(|e| ApiError::Unavailable(format!("the history database is not writable: {e}")))?;
+    }
+    let waiting: Vec<String> =
+        state.loops.iter().filter(|l| l.status.borrow().ticks == 0).map(|l| l.config.name.clone()).collect();
+    if !waiting.is_empty() {
+        return Err(ApiError::Unavailable(format!("loops that have not ticked yet: {}", waiting.join(", "))));
+    }
+    Ok(Json(json!({"status": "ready"})))
+}
+
+pub async fn metrics(State(state): State<ApiState>) -> impl IntoResponse {
+    ([(header::CONTENT_TYPE, "text/plain; version=0.0.4; charset=utf-8")], state.metrics.render())
+}
+
+pub async fn openapi(_: Reader) -> Json<Value> {
+    Json(openapi::document())
+}
+
+pub async fn loops(State(state): State<ApiState>, _: Reader) -> Json<Vec<LoopStatus>> {
+    Json(state.loops.iter().map(|l| l.status.borrow().clone()).collect())
+}
+
+pub async fn one_loop(
+    State(state): State<ApiState>,
+    _: Reader,
+    PathParams(name): PathParams<String>,
+) -> Result<Json<LoopStatus>, ApiError> {
+    Ok(Json(state.find(&name)?.status.borrow().clone()))
+}
+
+#[derive(Debug, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct ModeChange {
+    mode: String,
+}
+
+pub async fn set_mode(
+    State(state): State<ApiState>,
+    Operator(caller): Operator,
+    PathParams(name): PathParams<String>,
+    JsonBody(change): JsonBody<ModeChange>,
+) -> Result<Json<LoopStatus>, ApiError> {
+    let handle = state.find(&name)?;
+    let mode: Mode = change.mode.parse().map_err(|e: String| ApiError::BadRequest(format!("mode: {e}")))?;
+    handle.set_mode(mode, &caller.name).await.map(Json).map_err(conflict)
+}
+
+#[derive(Debug, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct BoundsChange {
+    min: f64,
+    max: f64,
+}
+
+pub async fn set_bounds(
+    State(state): State<ApiState>,
+    Operator(caller): Operator,
+    PathParams((name, input)): PathParams<(String, String)>,
+    JsonBody(change): JsonBody<BoundsChange>,
+) -> Result<Json<LoopStatus>, ApiError> {
+    let handle = state.find(&name)?;
+    let index = handle
+        .config
+        .inputs
+        .iter()
+        .position(|i| i.name == input)
+        .ok_or_else(|| ApiError::NotFound(format!("loop `{name}` has no input `{input}`")))?;
+    let bounds = Range { min: change.min, max: change.max };
+    handle.config.inputs[index].check_bounds(bounds).map_err(ApiError::Unprocessable)?;
+    handle.set_bounds(index, bounds, &caller.name).await.map(Json).map_err(conflict)
+}
+
+fn conflict(e: CommandError) -> ApiError {
+    match e {
+        CommandError::Conflict(m) => ApiError::Conflict(m),
+    }
+}
+
+#[derive(Debug, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct SampleQuery {
+    since: Option<String>,
+    until: Option<String>,
+    limit: Option<u32>,
+    format: Option<String>,
+}
+
+fn time_param(name: &str, value: Option<&str>) -> Result<Option<i64>, ApiError> {
+    value.map(|v| parse_rfc3339(v).map_err(|e| ApiError::BadRequest(format!("{name}: {e}")))).transpose()
+}
+
+fn limit_param(limit: Option<u32>, default: u32, max: u32) -> Result<u32, ApiError> {
+    match limit.unwrap_or(default) {
+        n if (1..=max).contains(&n) => Ok(n),
+        n => Err(ApiError::BadRequest(format!("limit: {n} is not between 1 and {max}"))),
+    }
+}
+
+pub async fn samples(
+    State(state): State<ApiState>,
+    _: Reader,
+    PathParams(name): PathParams<String>,
+    QueryParams(query): QueryParams<SampleQuery>,
+    headers: HeaderMap,
+) -> Result<Response, ApiError> {
+    let handle = state.find(&name)?;
+    let history = state.history.as_ref().ok_or_else(|| ApiError::Unavailable("no history is kept".into()))?;
+    let since = time_param("since", query.since.as_deref())?;
+    let until = time_param("until", query.until.as_deref())?;
+    let csv = match query.format.as_deref() {
+        Some("csv") => true,
+        Some("json") => false,
+        Some(other) => return Err(ApiError::BadRequest(format!("format: `{other}` is not json or csv"))),
+        None => {
+            headers.get(header::ACCEPT).and_then(|a| a.to_str().ok()).is_some_and(|a| a.contains("text/csv"))
+        }
+    };
+    if csv {
+        let limit = limit_param(query.limit, SAMPLES_DEFAULT, SAMPLES_MAX_CSV)?;
+        let inputs: Vec<String> = handle.config.inputs.iter().map(|i| i.name.clone()).collect();
+        let mut header_line = String::from("at,objective,state");
+        for i in &inputs {
+            header_line.push_str(&format!(",{i}.applied,{i}.estimate,{i}.gradient"));
+        }
+        header_line.push('\n');
+        let rows = history.sample_stream(&name, since, until, limit).map(move |row| match row {
+            Ok(row) => Ok(csv_line(&row, &inputs)),
+            Err(e) => {
+                tracing::error!(error = %e, "history read failed during a CSV export");
+                Err(std::io::Error::other("history read failed"))
+            }
+        });
+        let body =
+            futures_util::stream::once(async move { Ok::<_, std::io::Error>(header_line) }).chain(rows);
+        let disposition = format!("attachment; filename=\"{name}-samples.csv\"");
+        return Ok((
+            [
+                (header::CONTENT_TYPE, "text/csv; charset=utf-8".to_owned()),
+                (header::CONTENT_DISPOSITION, disposition),
+            ],
+            Body::from_stream(body),
+        )
+            .into_response());
+    }
+    let limit = limit_param(query.limit, SAMPLES_DEFAULT, SAMPLES_MAX_JSON)?;
+    let rows =
+        history.samples(&name, since, until, limit).await.map_err(|e| ApiError::Internal(e.to_string()))?;
+    Ok(Json(rows.iter().map(sample_json).collect::<Vec<_>>()).into_response())
+}
+
+fn number(v: Option<f64>) -> Value {
+    v.filter(|x| x.is_finite()).map_or(Value::Null, |x| json!(x))
+}
+
+fn sample_json(row: &SampleRow) -> Value {
+    let inputs: serde_json::Map<String, Value> = row
+        .inputs
+        .iter()
+        .map(|(name, v)| {
+            (name.clone(), json!({"applied": number(v.applied), "estimate": number(v.estimate), "gradient": number(v.gradient)}))
+        })
+        .collect();
+    json!({"at": rfc3339(row.at_ms), "objective": number(row.objective), "state": row.state, "inputs": inputs})
+}
+
+/// One CSV row with the loop's inputs in config order; missing or non-finite values
+/// are empty cells.
+fn csv_line(row: &SampleRow, inputs: &[String]) -> String {
+    let cell = |v: Option<f64>| v.filter(|x| x.is_finite()).map(|x| x.to_string()).unwrap_or_default();
+    let mut line = format!("{},{},{}", rfc3339(row.at_ms), cell(row.objective), row.state);
+    for name in inputs {
+        let values = row.inputs.iter().find(|(n, _)| n == name).map(|(_, v)| v);
+        for value in
+            [values.and_then(|v| v.applied), values.and_then(|v| v.estimate), values.and_then(|v| v.gradient)]
+        {
+            line.push(',');
+            line.push_str(&cell(value));
+        }
+    }
+    line.push('\n');
+    line
+}
+
+#[derive(Debug, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct EventQuery {
+    #[serde(rename = "loop")]
+    loop_name: Option<String>,
+    since: Option<String>,
+    limit: Option<u32>,
+}
+
+pub async fn events(
+    State(state): State<ApiState>,
+    _: Reader,
+    QueryParams(query): QueryParams<EventQuery>,
+) -> Result<Json<Vec<Value>>, ApiError> {
+    if let Some(name) = &query.loop_name {
+        state.find(name)?;
+    }
+    let history = state.history.as_ref().ok_or_else(|| ApiError::Unavailable("no history is kept".into()))?;
+    let since = time_param("since", query.since.as_deref())?;
+    let limit = limit_param(query.limit, EVENTS_DEFAULT, EVENTS_MAX)?;
+    let rows = history
+        .events(query.loop_name.as_deref(), since, limit)
+        .await
+        .map_err(|e| ApiError::Internal(e.to_string()))?;
+    Ok(Json(rows.iter().map(event_json).collect()))
+}
+
+fn event_json(e: &EventRow) -> Value {
+    json!({"id": e.id, "at": rfc3339(e.at_ms), "loop": e.loop_name, "kind": e.kind, "detail": e.detail, "actor": e.actor})
+}

@@ -1,0 +1,191 @@
+//! The OpenAPI 3.1 document of the API, kept by hand next to the handlers; a test checks
+//! that it lists every route of the router, and the reference validator checks its form.
+
+use serde_json::{Value, json};
+
+use super::handlers::{EVENTS_DEFAULT, EVENTS_MAX, SAMPLES_DEFAULT, SAMPLES_MAX_CSV, SAMPLES_MAX_JSON};
+
+fn error_response(description: &str) -> Value {
+    json!({"description": description, "content": {"application/json": {"schema": {"$ref": "#/components/schemas/Error"}}}})
+}
+
+fn json_response(description: &str, schema: Value) -> Value {
+    json!({"description": description, "content": {"application/json": {"schema": schema}}})
+}
+
+fn loop_param() -> Value {
+    json!({"name": "loop", "in": "path", "required": true, "schema": {"type": "string"}, "description": "Loop name."})
+}
+
+fn status_ref() -> Value {
+    json!({"$ref": "#/components/schemas/LoopStatus"})
+}
+
+/// Responses every read can give besides its own.
+fn read_errors(mut responses: Value) -> Value {
+    responses["401"] = error_response("No or unknown token, when reads need one (`open_reads = false`).");
+    responses
+}
+
+/// Responses every write can give besides its own.
+fn write_errors(mut responses: Value) -> Value {
+    responses["400"] = error_response("Malformed JSON, a wrong type or an unknown field.");
+    responses["401"] = error_response("No token, an unknown token, or no tokens configured.");
+    responses["403"] = error_response("A viewer token: changes need an operator token.");
+    responses["404"] = error_response("Unknown loop or input.");
+    responses["409"] = error_response("Not allowed in the loop's current state.");
+    responses
+}
+
+pub fn document() -> Value {
+    let number_or_null = json!({"type": ["number", "null"]});
+    json!({
+        "openapi": "3.1.0",
+        "info": {
+            "title": "Ridgeline",
+            "version": env!("CARGO_PKG_VERSION"),
+            "description": "Supervisory extremum-seeking optimizer beside a PLC: loop status and changes, history, health and metrics. Times are RFC 3339 UTC. Errors are {\"error\": {\"code\", \"message\"}}."
+        },
+        "components": {
+            "securitySchemes": {"bearer": {"type": "http", "scheme": "bearer", "description": "A token from `ridgeline token`; its SHA-256 is in the config's [[access]]."}},
+            "schemas": {
+                "Error": {
+                    "type": "object",
+                    "required": ["error"],
+                    "properties": {"error": {"type": "object", "required": ["code", "message"], "properties": {
+                        "code": {"type": "string", "description": "snake_case reason."},
+                        "message": {"type": "string", "description": "One sentence."}
+                    }}}
+                },
+                "Bounds": {"type": "object", "required": ["min", "max"], "properties": {"min": {"type": "number"}, "max": {"type": "number"}}},
+                "InputStatus": {
+                    "type": "object",
+                    "required": ["name", "applied", "estimate", "gradient", "bounds", "limits", "safe"],
+                    "properties": {
+                        "name": {"type": "string"},
+                        "applied": number_or_null, "estimate": number_or_null, "gradient": number_or_null,
+                        "bounds": {"$ref": "#/components/schemas/Bounds"},
+                        "limits": {"$ref": "#/components/schemas/Bounds"},
+                        "safe": {"type": "number"}
+                    }
+                },
+                "LoopStatus": {
+                    "type": "object",
+                    "required": ["name", "mode", "state", "fallback_reason", "direction", "method", "permitted", "objective", "objective_at", "ticks", "inputs"],
+                    "properties": {
+                        "name": {"type": "string"},
+                        "mode": {"enum": ["seeking", "holding", "observing", "stopped"]},
+                        "state": {"enum": ["seeking", "holding", "observing", "stopped", "fallback", "no_permit"]},
+                        "fallback_reason": {"type": ["string", "null"]},
+                        "direction": {"enum": ["maximize", "minimize"]},
+                        "method": {"enum": ["sine", "newton", "stepwise"]},
+                        "permitted": {"type": "boolean"},
+                        "objective": number_or_null,
+                        "objective_at": {"type": ["string", "null"], "format": "date-time"},
+                        "ticks": {"type": "integer", "minimum": 0},
+                        "skipped_ticks": {"type": "integer", "minimum": 0},
+                        "inputs": {"type": "array", "items": {"$ref": "#/components/schemas/InputStatus"}}
+                    }
+                },
+                "ModeChange": {
+                    "type": "object", "required": ["mode"], "additionalProperties": false,
+                    "properties": {"mode": {"enum": ["seeking", "holding", "observing", "stopped"]}}
+                },
+                "BoundsChange": {
+                    "type": "object", "required": ["min", "max"], "additionalProperties": false,
+                    "properties": {"min": {"type": "number"}, "max": {"type": "number"}}
+                },
+                "Sample": {
+                    "type": "object",
+                    "required": ["at", "objective", "state", "inputs"],
+                    "properties": {
+                        "at": {"type": "string", "format": "date-time"},
+                        "objective": number_or_null,
+                        "state": {"type": "string"},
+                        "inputs": {"type": "object", "additionalProperties": {
+                            "type": "object", "required": ["applied", "estimate", "gradient"],
+                            "properties": {"applied": number_or_null, "estimate": number_or_null, "gradient": number_or_null}
+                        }}
+                    }
+                },
+                "Event": {
+                    "type": "object",
+                    "required": ["id", "at", "loop", "kind", "detail", "actor"],
+                    "properties": {
+                        "id": {"type": "integer"},
+                        "at": {"type": "string", "format": "date-time"},
+                        "loop": {"type": ["string", "null"]},
+                        "kind": {"type": "string", "description": "mode_changed, bounds_changed, loop_started, loop_stopped, link_down, link_up, service_started, service_stopped, ..."},
+                        "detail": {"description": "JSON detail of the event."},
+                        "actor": {"type": "string", "description": "The token's name, or \"system\"."}
+                    }
+                }
+            }
+        },
+        "paths": {
+            "/healthz": {"get": {"summary": "200 while the process runs", "responses": {"200": {"description": "Running.", "content": {"text/plain": {"schema": {"type": "string"}}}}}}},
+            "/readyz": {"get": {"summary": "200 when the database is writable and every loop has ticked", "responses": {
+                "200": json_response("Ready.", json!({"type": "object"})),
+                "503": error_response("Not ready yet, with the reason.")
+            }}},
+            "/metrics": {"get": {"summary": "Prometheus text exposition format 0.0.4", "responses": {"200": {"description": "Metrics.", "content": {"text/plain": {"schema": {"type": "string"}}}}}}},
+            "/api/v1/openapi.json": {"get": {"summary": "This document", "security": [{}, {"bearer": []}], "responses": read_errors(json!({"200": json_response("The OpenAPI document.", json!({"type": "object"}))}))}},
+            "/api/v1/loops": {"get": {"summary": "Status of every loop", "security": [{}, {"bearer": []}], "responses": read_errors(json!({"200": json_response("Loop statuses in config order.", json!({"type": "array", "items": status_ref()}))}))}},
+            "/api/v1/loops/{loop}": {"get": {
+                "summary": "Status of one loop", "security": [{}, {"bearer": []}], "parameters": [loop_param()],
+                "responses": read_errors(json!({"200": json_response("The loop's status.", status_ref()), "404": error_response("Unknown loop.")}))
+            }},
+            "/api/v1/loops/{loop}/mode": {"put": {
+                "summary": "Ask a loop for a mode; from fallback this is the acknowledgement",
+                "security": [{"bearer": []}], "parameters": [loop_param()],
+                "requestBody": {"required": true, "content": {"application/json": {"schema": {"$ref": "#/components/schemas/ModeChange"}}}},
+                "responses": write_errors(json!({"200": json_response("The loop's status with the change taken.", status_ref())}))
+            }},
+            "/api/v1/loops/{loop}/inputs/{input}/bounds": {"put": {
+                "summary": "Change an input's operating bounds, inside its limits",
+                "security": [{"bearer": []}],
+                "parameters": [loop_param(), {"name": "input", "in": "path", "required": true, "schema": {"type": "string"}, "description": "Input name."}],
+                "requestBody": {"required": true, "content": {"application/json": {"schema": {"$ref": "#/components/schemas/BoundsChange"}}}},
+                "responses": write_errors(json!({
+                    "200": json_response("The loop's status with the new bounds.", status_ref()),
+                    "422": error_response("Bounds outside the limits, empty, not finite, or narrower than twice the dither amplitude.")
+                }))
+            }},
+            "/api/v1/loops/{loop}/samples": {"get": {
+                "summary": "The loop's history, oldest first; CSV with `Accept: text/csv` or `format=csv`",
+                "security": [{}, {"bearer": []}],
+                "parameters": [
+                    loop_param(),
+                    {"name": "since", "in": "query", "schema": {"type": "string", "format": "date-time"}, "description": "Samples at or after this time."},
+                    {"name": "until", "in": "query", "schema": {"type": "string", "format": "date-time"}, "description": "Samples before this time."},
+                    {"name": "limit", "in": "query", "schema": {"type": "integer", "minimum": 1, "maximum": SAMPLES_MAX_CSV, "default": SAMPLES_DEFAULT},
+                     "description": format!("At most this many samples: default {SAMPLES_DEFAULT}, up to {SAMPLES_MAX_JSON} as JSON and {SAMPLES_MAX_CSV} as CSV.")},
+                    {"name": "format", "in": "query", "schema": {"enum": ["json", "csv"]}}
+                ],
+                "responses": read_errors(json!({
+                    "200": {"description": "Samples.", "content": {
+                        "application/json": {"schema": {"type": "array", "items": {"$ref": "#/components/schemas/Sample"}}},
+                        "text/csv": {"schema": {"type": "string", "description": "Header at,objective,state,<input>.applied,<input>.estimate,<input>.gradient,..."}}
+                    }},
+                    "400": error_response("A malformed time, limit or format."),
+                    "404": error_response("Unknown loop.")
+                }))
+            }},
+            "/api/v1/events": {"get": {
+                "summary": "Mode changes, bound changes, starts and stops, link up and down: newest first",
+                "security": [{}, {"bearer": []}],
+                "parameters": [
+                    {"name": "loop", "in": "query", "schema": {"type": "string"}, "description": "Only this loop's events."},
+                    {"name": "since", "in": "query", "schema": {"type": "string", "format": "date-time"}},
+                    {"name": "limit", "in": "query", "schema": {"type": "integer", "minimum": 1, "maximum": EVENTS_MAX, "default": EVENTS_DEFAULT}}
+                ],
+                "responses": read_errors(json!({
+                    "200": json_response("Events.", json!({"type": "array", "items": {"$ref": "#/components/schemas/Event"}})),
+                    "400": error_response("A malformed time or limit."),
+                    "404": error_response("Unknown loop.")
+                }))
+            }},
+            "/": {"get": {"summary": "Status page for people", "security": [{}, {"bearer": []}], "responses": read_errors(json!({"200": {"description": "HTML.", "content": {"text/html": {"schema": {"type": "string"}}}}}))}}
+        }
+    })
+}

@@ -1,0 +1,374 @@
+//! The history store: samples, events and last estimates in SQLite, the only place that talks SQL.
+
+mod time;
+mod writer;
+
+use std::fmt;
+use std::path::{Path, PathBuf};
+use std::sync::Arc;
+use std::time::Duration;
+
+use futures_util::stream::{self, BoxStream, StreamExt};
+use serde::de::{Deserializer, MapAccess, Visitor};
+use serde::{Deserialize, Serialize};
+use sqlx::Row;
+use sqlx::migrate::Migrator;
+use sqlx::sqlite::{
+    SqliteConnectOptions, SqliteJournalMode, SqlitePool, SqlitePoolOptions, SqliteRow, SqliteSynchronous,
+};
+
+pub use time::{now_ms, parse_rfc3339, rfc3339};
+pub use writer::{HistorySender, Writer, WriterSettings, Written};
+
+static MIGRATOR: Migrator = sqlx::migrate!("../migrations");
+
+/// Rows per page when streaming samples: large enough that paging costs little, small
+/// enough that no read holds a snapshot (and so the WAL) for long.
+const STREAM_PAGE_ROWS: u32 = 1000;
+
+/// The history database: a small pool for reads and checks, and the settings the
+/// writer's own connection uses. Cheap to clone.
+#[derive(Clone)]
+pub struct History {
+    pool: SqlitePool,
+    path: Arc<Path>,
+}
+
+impl fmt::Debug for History {
+    fn fmt(&self, f: &mut fmt::Formatter<'_>) -> fmt::Result {
+        f.debug_struct("History").field("path", &self.path).finish_non_exhaustive()
+    }
+}
+
+/// What can go wrong with the history store.
+#[derive(Debug, thiserror::Error)]
+pub enum HistoryError {
+    /// The database file or its directory cannot be created, opened or read as SQLite.
+    #[error("cannot open the history database {}: {reason}", path.display())]
+    Open { path: PathBuf, reason: String },
+    /// The embedded migrations cannot be applied, or do not match those already applied.
+    #[error("cannot apply the history migrations to {}: {reason}", path.display())]
+    Migrate { path: PathBuf, reason: String },
+    /// A statement failed (I/O, a full disk, a lock held too long, ...).
+    #[error("history query failed: {0}")]
+    Query(#[from] sqlx::Error),
+    /// A stored row that this version cannot read back.
+    #[error("unreadable history row: {0}")]
+    Corrupt(String),
+}
+
+/// One tick of one loop, as a loop hands it to the writer.
+#[derive(Debug, Clone, PartialEq)]
+pub struct SampleRecord {
+    pub loop_name: Arc<str>,
+    pub at_ms: i64,
+    /// `None` when the tick had no usable objective; a non-finite value is stored as NULL.
+    pub objective: Option<f64>,
+    pub state: &'static str,
+    /// In config order, which is the order they come back in.
+    pub inputs: Vec<InputSample>,
+}
+
+/// One input's values in a tick.
+#[derive(Debug, Clone, PartialEq)]
+pub struct InputSample {
+    pub name: Arc<str>,
+    pub applied: f64,
+    pub estimate: f64,
+    pub gradient: f64,
+}
+
+/// Something that happened: a mode change, a trip, a bounds change, a link going down...
+#[derive(Debug, Clone, PartialEq)]
+pub struct EventRecord {
+    pub at_ms: i64,
+    /// `None` for events of the whole service (start, stop, a link).
+    pub loop_name: Option<String>,
+    pub kind: String,
+    pub detail: serde_json::Value,
+    /// The token's name, or `"system"`.
+    pub actor: String,
+}
+
+/// A stored sample.
+#[derive(Debug, Clone, PartialEq)]
+pub struct SampleRow {
+    pub at_ms: i64,
+    pub objective: Option<f64>,
+    pub state: String,
+    /// In the order they were stored (config order).
+    pub inputs: Vec<(String, InputValues)>,
+}
+
+/// One input's stored values; `None` where the value was not finite.
+#[derive(Debug, Clone, Copy, PartialEq, Default, Serialize, Deserialize)]
+pub struct InputValues {
+    #[serde(default)]
+    pub applied: Option<f64>,
+    #[serde(default)]
+    pub estimate: Option<f64>,
+    #[serde(default)]
+    pub gradient: Option<f64>,
+}
+
+/// A stored event.
+#[derive(Debug, Clone, PartialEq)]
+pub struct EventRow {
+    pub id: i64,
+    pub at_ms: i64,
+    pub loop_name: Option<String>,
+    pub kind: String,
+    pub detail: serde_json::Value,
+    pub actor: String,
+}
+
+/// The last finite estimate stored for one input of a loop.
+#[derive(Debug, Clone, PartialEq)]
+pub struct StoredEstimate {
+    pub input: String,
+    pub estimate: f64,
+    pub at_ms: i64,
+}
+
+impl History {
+    /// Opens the database at `path`, creating the file and its directories, with WAL
+    /// journal, `synchronous=NORMAL`, a busy timeout (5 s) and foreign keys, and applies
+    /// the embedded migrations. A file that cannot be opened is an error naming the path.
+    pub async fn open(path: &Path) -> Result<History, HistoryError> {
+        let open_error = |reason: String| HistoryError::Open { path: path.to_owned(), reason };
+        if let Some(parent) = path.parent().filter(|p| !p.as_os_str().is_empty()) {
+            std::fs::create_dir_all(parent).map_err(|e| open_error(e.to_string()))?;
+        }
+        // WAL lets the API read while the writer writes; NORMAL syncs at checkpoints
+        // rather than every commit, which in WAL mode still never corrupts the file on
+        // a crash or power loss (it can only lose the last commits).
+        let options = SqliteConnectOptions::new()
+            .filename(path)
+            .create_if_missing(true)
+            .journal_mode(SqliteJournalMode::Wal)
+            .synchronous(SqliteSynchronous::Normal)
+            .busy_timeout(Duration::from_secs(5))
+            .foreign_keys(true);
+        let pool = SqlitePoolOptions::new()
+            .max_connections(4)
+            .acquire_timeout(Duration::from_secs(10))
+            .connect_with(options)
+            .await
+            .map_err(|e| open_error(reason(&e)))?;
+        MIGRATOR
+            .run(&pool)
+            .await
+            .map_err(|e| HistoryError::Migrate { path: path.to_owned(), reason: e.to_string() })?;
+        Ok(History { pool, path: path.into() })
+    }
+
+    /// The database file.
+    pub fn path(&self) -> &Path {
+        &self.path
+    }
+
+    /// The sender loops and the API use, and the writer task that drains it.
+    pub fn writer(
+        &self,
+        settings: WriterSettings,
+        metrics: Option<Arc<crate::metrics::Metrics>>,
+    ) -> (HistorySender, Writer) {
+        writer::channel((*self.pool.connect_options()).clone(), settings, metrics)
+    }
+
+    /// Samples of one loop with `since_ms <= at < until_ms` (either optional), oldest
+    /// first, at most `limit`.
+    pub async fn samples(
+        &self,
+        loop_name: &str,
+        since_ms: Option<i64>,
+        until_ms: Option<i64>,
+        limit: u32,
+    ) -> Result<Vec<SampleRow>, HistoryError> {
+        let rows = sqlx::query(
+            "SELECT id, at_ms, objective, state, inputs FROM samples
+             WHERE loop = ?1 AND at_ms >= ?2 AND at_ms < ?3 ORDER BY at_ms, id LIMIT ?4",
+        )
+        .bind(loop_name.to_owned())
+        .bind(since_ms.unwrap_or(i64::MIN))
+        .bind(until_ms.unwrap_or(i64::MAX))
+        .bind(i64::from(limit))
+        .fetch_all(&self.pool)
+        .await?;
+        rows.iter().map(|r| sample_row(r, loop_name).map(|(_, row)| row)).collect()
+    }
+
+    /// The same rows as [`History::samples`] as a stream, so a large export is never
+    /// built in memory. Reads a page at a time, holding no read transaction between pages.
+    pub fn sample_stream(
+        &self,
+        loop_name: &str,
+        since_ms: Option<i64>,
+        until_ms: Option<i64>,
+        limit: u32,
+    ) -> BoxStream<'static, Result<SampleRow, HistoryError>> {
+        struct Page {
+            pool: SqlitePool,
+            loop_name: String,
+            /// The (at_ms, id) of the last row returned; the next page starts after it.
+            after: (i64, i64),
+            until_ms: i64,
+            remaining: u32,
+        }
+        let start = Page {
+            pool: self.pool.clone(),
+            loop_name: loop_name.to_owned(),
+            after: (since_ms.unwrap_or(i64::MIN), i64::MIN),
+            until_ms: until_ms.unwrap_or(i64::MAX),
+            remaining: limit,
+        };
+        stream::unfold(Some(start), |page| async move {
+            let mut page = page.filter(|p| p.remaining > 0)?;
+            let rows = sqlx::query(
+                "SELECT id, at_ms, objective, state, inputs FROM samples
+                 WHERE loop = ?1 AND (at_ms, id) > (?2, ?3) AND at_ms < ?4 ORDER BY at_ms, id LIMIT ?5",
+            )
+            .bind(page.loop_name.clone())
+            .bind(page.after.0)
+            .bind(page.after.1)
+            .bind(page.until_ms)
+            .bind(i64::from(page.remaining.min(STREAM_PAGE_ROWS)))
+            .fetch_all(&page.pool)
+            .await;
+            let rows = match rows {
+                Ok(rows) if rows.is_empty() => return None,
+                Ok(rows) => rows,
+                Err(e) => return Some((vec![Err(HistoryError::from(e))], None)),
+            };
+            let mut out = Vec::with_capacity(rows.len());
+            for r in &rows {
+                match sample_row(r, &page.loop_name) {
+                    Ok((id, row)) => {
+                        page.after = (row.at_ms, id);
+                        out.push(Ok(row));
+                    }
+                    Err(e) => {
+                        out.push(Err(e));
+                        return Some((out, None));
+                    }
+                }
+            }
+            page.remaining = page.remaining.saturating_sub(out.len() as u32);
+            Some((out, Some(page)))
+        })
+        .flat_map(stream::iter)
+        .boxed()
+    }
+
+    /// Events, newest first, of one loop or of all, since a time, at most `limit`.
+    pub async fn events(
+        &self,
+        loop_name: Option<&str>,
+        since_ms: Option<i64>,
+        limit: u32,
+    ) -> Result<Vec<EventRow>, HistoryError> {
+        // Two statements rather than `?1 IS NULL OR loop = ?1`, so each uses its index.
+        let query = match loop_name {
+            Some(name) => sqlx::query(
+                "SELECT id, at_ms, loop, kind, detail, actor FROM events
+                 WHERE loop = ?1 AND at_ms >= ?2 ORDER BY at_ms DESC, id DESC LIMIT ?3",
+            )
+            .bind(name.to_owned()),
+            None => sqlx::query(
+                "SELECT id, at_ms, loop, kind, detail, actor FROM events
+                 WHERE at_ms >= ?1 ORDER BY at_ms DESC, id DESC LIMIT ?2",
+            ),
+        };
+        let rows =
+            query.bind(since_ms.unwrap_or(i64::MIN)).bind(i64::from(limit)).fetch_all(&self.pool).await?;
+        rows.iter().map(event_row).collect()
+    }
+
+    /// The last stored estimate of each input of a loop, with when it was stored, for
+    /// resuming after a restart. Ordered by input name.
+    pub async fn last_estimates(&self, loop_name: &str) -> Result<Vec<StoredEstimate>, HistoryError> {
+        let rows =
+            sqlx::query("SELECT input, estimate, at_ms FROM last_estimates WHERE loop = ?1 ORDER BY input")
+                .bind(loop_name.to_owned())
+                .fetch_all(&self.pool)
+                .await?;
+        rows.iter()
+            .map(|r| {
+                Ok(StoredEstimate { input: r.try_get(0)?, estimate: r.try_get(1)?, at_ms: r.try_get(2)? })
+            })
+            .collect()
+    }
+
+    /// Whether a write succeeds right now (for `/readyz`): takes the write lock and makes
+    /// a change in a transaction that is then rolled back.
+    pub async fn check_writable(&self) -> Result<(), HistoryError> {
+        let mut tx = self.pool.begin_with("BEGIN IMMEDIATE").await?;
+        sqlx::query(
+            "INSERT INTO last_estimates (loop, input, estimate, at_ms) VALUES ('', '', 0, 0)
+             ON CONFLICT DO NOTHING",
+        )
+        .execute(&mut *tx)
+        .await?;
+        tx.rollback().await?;
+        Ok(())
+    }
+}
+
+/// The reason of an open failure without sqlx's "error returned from database" wrapping.
+fn reason(e: &sqlx::Error) -> String {
+    match e {
+        sqlx::Error::Database(db) => db.message().to_owned(),
+        sqlx::Error::Io(io) => io.to_string(),
+        other => other.to_string(),
+    }
+}
+
+fn sample_row(r: &SqliteRow, loop_name: &str) -> Result<(i64, SampleRow), HistoryError> {
+    let (id, at_ms): (i64, i64) = (r.try_get(0)?, r.try_get(1)?);
+    let inputs: &str = r.try_get(4)?;
+    let inputs = serde_json::from_str::<StoredInputs>(inputs).map_err(|e| {
+        HistoryError::Corrupt(format!("the inputs of loop {loop_name}'s sample at {}: {e}", rfc3339(at_ms)))
+    })?;
+    Ok((id, SampleRow { at_ms, objective: r.try_get(2)?, state: r.try_get(3)?, inputs: inputs.0 }))
+}
+
+fn event_row(r: &SqliteRow) -> Result<EventRow, HistoryError> {
+    let id: i64 = r.try_get(0)?;
+    let detail: &str = r.try_get(4)?;
+    let detail = serde_json::from_str(detail)
+        .map_err(|e| HistoryError::Corrupt(format!("the detail of event {id}: {e}")))?;
+    Ok(EventRow {
+        id,
+        at_ms: r.try_get(1)?,
+        loop_name: r.try_get(2)?,
+        kind: r.try_get(3)?,
+        detail,
+        actor: r.try_get(5)?,
+    })
+}
+
+/// The `inputs` column read straight into a list, keeping the stored order.
+struct StoredInputs(Vec<(String, InputValues)>);
+
+impl<'de> Deserialize<'de> for StoredInputs {
+    fn deserialize<D: Deserializer<'de>>(d: D) -> Result<Self, D::Error> {
+        struct InOrder;
+        impl<'de> Visitor<'de> for InOrder {
+            type Value = StoredInputs;
+            fn expecting(&self, f: &mut fmt::Formatter) -> fmt::Result {
+                f.write_str("an object of inputs")
+            }
+            fn visit_map<A: MapAccess<'de>>(self, mut map: A) -> Result<StoredInputs, A::Error> {
+                let mut inputs = Vec::with_capacity(map.size_hint().unwrap_or(2));
+                while let Some(entry) = map.next_entry()? {
+                    inputs.push(entry);
+                }
+                Ok(StoredInputs(inputs))
+            }
+        }
+        d.deserialize_map(InOrder)
+    }
+}
+
+#[cfg(test)]
+mod tests;
