@@ -199,6 +199,9 @@ fn samples_written_during_a_run_come_back_in_order_and_as_csv() {
     assert_eq!(bad.status, 400);
     assert_eq!(call(&r.rig, "GET", "/api/v1/loops/bowl/samples?limit=0", None, None).status, 400);
     assert_eq!(call(&r.rig, "GET", "/api/v1/loops/nope/samples", None, None).status, 404);
+    let wrong_method = call(&r.rig, "POST", "/api/v1/loops", None, Some("{}"));
+    assert_eq!(wrong_method.status, 405);
+    assert_eq!(wrong_method.json()["error"]["code"], "method_not_allowed");
 }
 
 #[test]

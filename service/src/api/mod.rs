@@ -53,6 +53,8 @@ pub enum ApiError {
     #[error("{0}")]
     NotFound(String),
     #[error("{0}")]
+    MethodNotAllowed(String),
+    #[error("{0}")]
     Conflict(String),
     #[error("{0}")]
     Unprocessable(String),
@@ -70,6 +72,7 @@ impl ApiError {
             ApiError::Unauthorized(_) => (StatusCode::UNAUTHORIZED, "unauthorized"),
             ApiError::Forbidden(_) => (StatusCode::FORBIDDEN, "forbidden"),
             ApiError::NotFound(_) => (StatusCode::NOT_FOUND, "not_found"),
+            ApiError::MethodNotAllowed(_) => (StatusCode::METHOD_NOT_ALLOWED, "method_not_allowed"),
             ApiError::Conflict(_) => (StatusCode::CONFLICT, "conflict"),
             ApiError::Unprocessable(_) => (StatusCode::UNPROCESSABLE_ENTITY, "unprocessable"),
             ApiError::Unavailable(_) => (StatusCode::SERVICE_UNAVAILABLE, "not_ready"),
@@ -197,8 +200,8 @@ pub fn router(state: ApiState) -> Router {
         .route("/", get(page::status_page))
         .route_layer(middleware::from_fn_with_state(state.clone(), count_request))
         .fallback(unmatched)
-        .method_not_allowed_fallback(|| async {
-            ApiError::BadRequest("this route does not take that method".into())
+        .method_not_allowed_fallback(|method: axum::http::Method, uri: axum::http::Uri| async move {
+            ApiError::MethodNotAllowed(format!("{} does not take {method}", uri.path()))
         })
         .with_state(state)
 }
