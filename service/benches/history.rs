@@ -88,6 +88,7 @@ fn records(rows: usize) -> Vec<SampleRecord> {
         .map(|k| {
             let phase = (k / LOOPS) as f64 * 0.157;
             SampleRecord {
+                resumable: true,
                 loop_name: names[k % LOOPS].clone(),
                 at_ms: start_ms + (k / LOOPS) as i64 * TICK_MS,
                 objective: Some(85.2087 + 0.0131 * phase.cos()),

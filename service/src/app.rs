@@ -110,8 +110,10 @@ impl App {
 
         let stop = CancellationToken::new();
         let loops = TaskTracker::new();
+        let mut handles = Vec::new();
         for (task, period) in tasks {
-            loops.spawn(supervisor::run(task, period, stop.clone()));
+            let name = task.name().to_owned();
+            handles.push((name, loops.spawn(supervisor::run(task, period, stop.clone()))));
         }
         loops.close();
         let api =
@@ -122,6 +124,12 @@ impl App {
         tracing::info!("stopping: loops write their shutdown setpoints, history is flushed");
         stop.cancel();
         loops.wait().await;
+        for (name, handle) in handles {
+            // A loop that panicked has stopped writing; /readyz has said so since.
+            if let Err(e) = handle.await {
+                tracing::error!(r#loop = %name, error = %e, "the loop's task ended abnormally");
+            }
+        }
         match tokio::time::timeout(API_DRAIN, api).await {
             Ok(served) => served.context("the API task failed")?.context("the API server failed")?,
             Err(_) => tracing::warn!("API requests still running after {API_DRAIN:?} were cut off"),

@@ -36,6 +36,13 @@ impl Reporting {
         }
     }
 
+    /// Counts a request refused before it was sent (the link is down or will not connect).
+    pub fn link_error(&self, link: &str, error: &LinkError) {
+        if let Some(m) = &self.metrics {
+            m.link_errors.with_label_values(&[link, error.kind()]).inc();
+        }
+    }
+
     /// Counts one request on a link: its duration, and its error if it failed.
     pub fn link_request(&self, link: &str, seconds: f64, error: Option<&LinkError>) {
         if let Some(m) = &self.metrics {

@@ -90,32 +90,46 @@ pub fn free_port() -> u16 {
         .port()
 }
 
-/// Starts `ridgeline sim` serving `plant` on `127.0.0.1:port` and waits until it listens.
-pub fn spawn_sim(plant: &Path, port: u16) -> Peer {
+/// Starts `ridgeline sim` serving `plant` on `127.0.0.1:port` (port 0 when `None`) and
+/// waits until it listens; returns it and the port it got.
+pub fn spawn_sim(plant: &Path, port: Option<u16>) -> (Peer, u16) {
     let mut command = Command::new(ridgeline_bin());
-    command.args([
-        "sim",
-        "--plant",
-        plant.to_str().expect("utf-8 path"),
-        "--listen",
-        &format!("127.0.0.1:{port}"),
-    ]);
-    Peer::start("ridgeline sim", command, std::time::Duration::from_secs(10), |l| {
+    let listen = format!("127.0.0.1:{}", port.unwrap_or(0));
+    command.args(["sim", "--plant", plant.to_str().expect("utf-8 path"), "--listen", &listen]);
+    let (peer, line) = Peer::start("ridgeline sim", command, std::time::Duration::from_secs(10), |l| {
         l.contains(" over Modbus/TCP on ")
-    })
-    .0
+    });
+    let port = line
+        .split(" over Modbus/TCP on ")
+        .nth(1)
+        .and_then(|rest| rest.split_whitespace().next())
+        .and_then(|addr| addr.parse::<std::net::SocketAddr>().ok())
+        .map(|a| a.port())
+        .unwrap_or_else(|| panic!("cannot read the simulator's port from: {line}"));
+    (peer, port)
 }
 
-/// Starts `ridgeline run` with `config` (whose `[service] listen` is `api`) and waits
-/// until its API answers; its log is [`Peer::stderr`].
-pub fn spawn_service(config: &Path, api: std::net::SocketAddr) -> Peer {
+/// Starts `ridgeline run` with `config` and waits until its API answers; returns it
+/// and the API's address, read from its log (so the config may listen on port 0). Its
+/// log is [`Peer::stderr`].
+pub fn spawn_service(config: &Path) -> (Peer, std::net::SocketAddr) {
     let mut command = Command::new(ridgeline_bin());
     command.args(["run", "--config", config.to_str().expect("utf-8 path")]);
     let peer = Peer::spawn("ridgeline run", command);
+    let mut api = None;
+    wait_until("the service logs its API address", std::time::Duration::from_secs(15), || {
+        api = peer.stderr().lines().find(|l| l.contains("ridgeline running")).and_then(|l| {
+            l.split_whitespace()
+                .find_map(|w| w.strip_prefix("api="))
+                .and_then(|a| a.parse::<std::net::SocketAddr>().ok())
+        });
+        api.is_some()
+    });
+    let api = api.expect("an API address");
     wait_until("the service's API answers", std::time::Duration::from_secs(10), || {
         http_get(api, "/healthz").is_some_and(|(status, _)| status == 200)
     });
-    peer
+    (peer, api)
 }
 
 /// Polls `condition` every 50 ms until it holds; fails the test after `limit`.

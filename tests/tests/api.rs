@@ -42,7 +42,7 @@ fn ticks(rig: &Rig) -> u64 {
 fn call(rig: &Rig, method: &str, path: &str, token: Option<&str>, body: Option<&str>) -> HttpAnswer {
     let bearer = token.map(|t| format!("Bearer {t}"));
     let headers: Vec<(&str, &str)> = bearer.iter().map(|b| ("Authorization", b.as_str())).collect();
-    http_request(rig.api, method, path, &headers, body).expect("the API answers")
+    http_request(rig.api(), method, path, &headers, body).expect("the API answers")
 }
 
 fn events(rig: &Rig) -> Vec<serde_json::Value> {
@@ -121,6 +121,10 @@ fn reads_need_a_token_only_when_open_reads_is_off() {
 fn refused_changes_leave_the_loop_and_the_history_unchanged() {
     let r = running(true);
     let before = call(&r.rig, "GET", "/api/v1/loops/bowl", None, None).json();
+    // Everything the start records is in history before counting.
+    wait_until("the start is in history", Duration::from_secs(5), || {
+        events(&r.rig).iter().any(|e| e["kind"] == "loop_started")
+    });
     let events_before = events(&r.rig).len();
     let bounds = "/api/v1/loops/bowl/inputs/u/bounds";
     let cases: &[(&str, &str, u16, &str)] = &[
@@ -181,7 +185,7 @@ fn samples_written_during_a_run_come_back_in_order_and_as_csv() {
     let until = rows[20]["at"].as_str().unwrap();
     let query = format!("/api/v1/loops/bowl/samples?until={until}&limit=10000");
     let as_json = call(&r.rig, "GET", &query, None, None).json();
-    let csv = http_request(r.rig.api, "GET", &query, &[("Accept", "text/csv")], None).unwrap();
+    let csv = http_request(r.rig.api(), "GET", &query, &[("Accept", "text/csv")], None).unwrap();
     assert_eq!(csv.status, 200);
     assert!(csv.header("content-type").unwrap().starts_with("text/csv"));
     let lines: Vec<&str> = csv.body.lines().collect();
@@ -216,6 +220,10 @@ fn events_record_who_changed_what_newest_first() {
         call(&r.rig, "PUT", "/api/v1/loops/bowl/inputs/u/bounds", Some(OPERATOR), Some(body)).status,
         200
     );
+    // History is written in batches, a moment after the change.
+    wait_until("the change is in history", Duration::from_secs(5), || {
+        events(&r.rig)[0]["kind"] == "bounds_changed"
+    });
     let events = events(&r.rig);
     assert_eq!(events[0]["kind"], "bounds_changed");
     assert_eq!(events[0]["actor"], "shift-script");
@@ -252,20 +260,21 @@ fn kill_9_leaves_a_database_that_passes_integrity_check_and_reopens() {
     assert!(check["samples"].as_u64().unwrap() > 0, "{check}");
     let _service = rig.service();
     wait_until("the reopened service is ready", Duration::from_secs(20), || {
-        http_request(rig.api, "GET", "/readyz", &[], None).is_some_and(|a| a.status == 200)
+        http_request(rig.api(), "GET", "/readyz", &[], None).is_some_and(|a| a.status == 200)
     });
-    let old = http_request(rig.api, "GET", "/api/v1/loops/bowl/samples?limit=10", &[], None).unwrap().json();
+    let old =
+        http_request(rig.api(), "GET", "/api/v1/loops/bowl/samples?limit=10", &[], None).unwrap().json();
     assert_eq!(old.as_array().unwrap().len(), 10, "samples from before the kill are there");
     drop(sim);
 }
 
 #[test]
-fn readyz_waits_for_every_loop_to_tick() {
+fn readyz_answers_200_once_every_loop_has_ticked_even_without_a_plc() {
     let rig = Rig::new("");
     let _service = rig.service();
-    // No PLC yet: the loop cannot tick with a reading, but it does tick.
+    // No PLC: the loop cannot read, but it ticks, and the database is writable.
     wait_until("ready", Duration::from_secs(20), || {
-        http_request(rig.api, "GET", "/readyz", &[], None).is_some_and(|a| a.status == 200)
+        http_request(rig.api(), "GET", "/readyz", &[], None).is_some_and(|a| a.status == 200)
     });
 }
 
@@ -417,4 +426,23 @@ fn ridgeline_token_prints_a_fresh_token_and_the_entry_with_its_sha256() {
     let again = ridgeline(&["token", "--name", "shift-script", "--role", "operator"]);
     assert_ne!(again.stdout.lines().nth(1), Some(token), "every token is new");
     assert_eq!(ridgeline(&["token", "--name", "x", "--role", "admin"]).code, Some(2));
+}
+
+#[test]
+fn the_shipped_scrape_config_and_alert_rules_pass_promtool() {
+    let Ok(promtool) = which_promtool() else {
+        eprintln!("promtool is not installed (Debian package `prometheus`); .ci/run installs it");
+        return;
+    };
+    let deploy = crate::check_command::root().join("deploy");
+    for args in [["check", "config", "prometheus.yml"], ["check", "rules", "alerts.yml"]] {
+        // Source: Prometheus' own checker (Debian package prometheus).
+        let out = std::process::Command::new(&promtool).args(args).current_dir(&deploy).output().unwrap();
+        assert!(
+            out.status.success(),
+            "{args:?}: {}{}",
+            String::from_utf8_lossy(&out.stdout),
+            String::from_utf8_lossy(&out.stderr)
+        );
+    }
 }

@@ -8,7 +8,7 @@ use std::time::Duration;
 
 use ridgeline::config::{Codec, RegisterSpace, RegisterType, WordOrder};
 use ridgeline::field::codec::{decode, encode};
-use ridgeline::field::modbus::ModbusLink;
+use ridgeline::field::modbus::{ModbusLink, Urgency};
 use ridgeline::field::{Function, LinkError, MAX_READ_REGISTERS, RegisterRead, plan_blocks};
 use ridgeline_tests::{Peer, python_json, python_peer, ridgeline_bin, write_file};
 use serde_json::{Value, json};
@@ -184,7 +184,7 @@ async fn write_and_check(values: &[(Codec, f64)], function: u8) {
     let link = server.link("pymodbus");
     for (e, &(_, value)) in entries.iter().zip(values) {
         let words = encode(&e.codec, value).unwrap_or_else(|err| panic!("{e:?}: {err}"));
-        link.write(e.address, &words).await.unwrap_or_else(|err| panic!("{e:?}: {err}"));
+        link.write(e.address, &words, Urgency::Normal).await.unwrap_or_else(|err| panic!("{e:?}: {err}"));
         let event = server.next_event("write");
         // Source: Modbus Application Protocol Specification V1.1b3 §6.6 (write single
         // register, 0x06) and §6.12 (write multiple registers, 0x10); the function code as
@@ -268,7 +268,7 @@ async fn exceptions_from_pymodbus_become_link_errors_naming_link_function_regist
     for part in ["link plc-east", "read holding registers (0x03)", "register 20", "exception 0x06"] {
         assert!(text.contains(part), "`{part}` missing from: {text}");
     }
-    let (code, function, _, text) = exception(link.write(20, &[1]).await);
+    let (code, function, _, text) = exception(link.write(20, &[1], Urgency::Normal).await);
     assert_eq!((code, function), (0x06, Function::WriteSingleRegister), "{text}");
     assert!(text.contains("write single register (0x06)"), "{text}");
     assert_eq!(server.next_event("busy")["function"], 3);

@@ -1,6 +1,8 @@
 //! A plant served by `ridgeline sim` and a loop run by `ridgeline run`, on loopback, with
-//! the history database in a temporary folder.
+//! the history database in a temporary folder. Both bind port 0 and report the port they
+//! got, so tests running side by side never race for a port.
 
+use std::cell::{Cell, RefCell};
 use std::net::SocketAddr;
 use std::path::PathBuf;
 
@@ -22,18 +24,11 @@ expression = "10 - 2 * (u - 3)^2"
 "#;
 
 /// One loop that finds u = 3 in a few seconds of wall time: 50 ms ticks, a 1 s dither.
-fn config(
-    plant_port: u16,
-    api: SocketAddr,
-    database: &str,
-    loop_extra: &str,
-    objective: &str,
-    extra: &str,
-) -> String {
+fn config(plant_port: u16, database: &str, loop_extra: &str, objective: &str, extra: &str) -> String {
     format!(
         r#"
 [service]
-listen = "{api}"
+listen = "127.0.0.1:0"
 database = "{database}"
 
 [links.plc]
@@ -75,42 +70,82 @@ gain = 0.09
 
 pub struct Rig {
     pub dir: tempfile::TempDir,
-    pub plant: PathBuf,
-    pub plant_port: u16,
-    pub api: SocketAddr,
+    plant: PathBuf,
+    plant_port: Cell<Option<u16>>,
+    api: Cell<Option<SocketAddr>>,
     pub config: PathBuf,
+    loop_extra: String,
+    objective: String,
+    extra: RefCell<String>,
+    edits: RefCell<Vec<(String, String)>>,
 }
 
 impl Rig {
     pub fn new(loop_extra: &str) -> Self {
-        Self::build(free_port(), loop_extra, "y", "")
+        Self::seeking(loop_extra, "y")
     }
 
-    /// A rig whose loop seeks on `objective`, with `extra` links and tags in the config.
-    pub fn build(plant_port: u16, loop_extra: &str, objective: &str, extra: &str) -> Self {
+    /// A rig whose loop seeks on `objective` (a tag name).
+    pub fn seeking(loop_extra: &str, objective: &str) -> Self {
         let dir = tempfile::tempdir().unwrap();
-        let api = SocketAddr::from(([127, 0, 0, 1], free_port()));
         let plant = write_file(dir.path(), "plant.toml", PLANT);
-        let database = dir.path().join("history").join("ridgeline.db").display().to_string();
-        let text = config(plant_port, api, &database, loop_extra, objective, extra);
-        let config = write_file(dir.path(), "ridgeline.toml", &text);
-        Rig { dir, plant, plant_port, api, config }
+        let config = dir.path().join("ridgeline.toml");
+        Rig {
+            dir,
+            plant,
+            plant_port: Cell::new(None),
+            api: Cell::new(None),
+            config,
+            loop_extra: loop_extra.to_owned(),
+            objective: objective.to_owned(),
+            extra: RefCell::new(String::new()),
+            edits: RefCell::new(Vec::new()),
+        }
     }
 
+    /// The simulator's port: the one it got, or one picked now for a simulator that
+    /// starts after the service.
+    pub fn plant_port(&self) -> u16 {
+        self.plant_port.get().unwrap_or_else(|| {
+            let port = free_port();
+            self.plant_port.set(Some(port));
+            port
+        })
+    }
+
+    /// The service's API address, once it runs.
+    pub fn api(&self) -> SocketAddr {
+        self.api.get().expect("the service was started")
+    }
+
+    /// Starts the simulator: on port 0 the first time, on the same port after.
     pub fn sim(&self) -> Peer {
-        spawn_sim(&self.plant, self.plant_port)
+        let (peer, port) = spawn_sim(&self.plant, self.plant_port.get());
+        self.plant_port.set(Some(port));
+        peer
     }
 
+    /// Writes the config (with the simulator's port) and starts the service.
     pub fn service(&self) -> Peer {
-        spawn_service(&self.config, self.api)
+        let database = self.database().display().to_string();
+        let mut text =
+            config(self.plant_port(), &database, &self.loop_extra, &self.objective, &self.extra.borrow());
+        for (from, to) in self.edits.borrow().iter() {
+            assert!(text.contains(from.as_str()), "the rig's config has no `{from}`");
+            text = text.replacen(from.as_str(), to, 1);
+        }
+        std::fs::write(&self.config, text).unwrap();
+        let (peer, api) = spawn_service(&self.config);
+        self.api.set(Some(api));
+        peer
     }
 
     pub fn setpoint(&self) -> Option<f64> {
-        read_holding_registers(self.plant_port, 200, 2).map(|w| f32_from_words(&w))
+        read_holding_registers(self.plant_port(), 200, 2).map(|w| f32_from_words(&w))
     }
 
     pub fn status(&self) -> Option<serde_json::Value> {
-        get_json(self.api, "/api/v1/loops/bowl")
+        get_json(self.api(), "/api/v1/loops/bowl")
     }
 
     pub fn estimate(&self) -> Option<f64> {
@@ -120,29 +155,27 @@ impl Rig {
     pub fn ticks(&self) -> u64 {
         self.status().and_then(|s| s["ticks"].as_u64()).unwrap_or(0)
     }
-}
 
-impl Rig {
     pub fn with_mode(self, mode: &str) -> Self {
-        let text = std::fs::read_to_string(&self.config).unwrap();
-        std::fs::write(
-            &self.config,
-            text.replace("start_mode = \"seeking\"", &format!("start_mode = \"{mode}\"")),
-        )
-        .unwrap();
+        self.edit("start_mode = \"seeking\"", &format!("start_mode = \"{mode}\""))
+    }
+
+    /// Adds lines to the `[service]` table (`open_reads`, ...) and whole tables such as
+    /// `[[access]]` entries before the links.
+    pub fn with_service(self, service_lines: &str, tables: &str) -> Self {
+        self.edit("[service]\n", &format!("[service]\n{service_lines}\n"))
+            .edit("[links.plc]", &format!("{tables}\n[links.plc]"))
+    }
+
+    /// Adds links and tags to the config.
+    pub fn with_tables(self, tables: &str) -> Self {
+        self.extra.borrow_mut().push_str(tables);
         self
     }
 
-    /// Adds lines to the `[service]` table (`open_reads`, ...) or whole tables such as
-    /// `[[access]]` entries before the links.
-    pub fn with_service(self, service_lines: &str, tables: &str) -> Self {
-        let text = std::fs::read_to_string(&self.config).unwrap();
-        let text = text.replacen("[service]\n", &format!("[service]\n{service_lines}\n"), 1).replacen(
-            "[links.plc]",
-            &format!("{tables}\n[links.plc]"),
-            1,
-        );
-        std::fs::write(&self.config, text).unwrap();
+    /// Replaces text in the config when it is written.
+    pub fn edit(self, from: &str, to: &str) -> Self {
+        self.edits.borrow_mut().push((from.to_owned(), to.to_owned()));
         self
     }
 

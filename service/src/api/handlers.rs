@@ -29,10 +29,19 @@ pub async fn healthz() -> &'static str {
 }
 
 pub async fn readyz(State(state): State<ApiState>) -> Result<Json<Value>, ApiError> {
-    if let Some(h) = &state.history {
-        h.check_writable()
-            .await
-            .map_err(|e| ApiError::Unavailable(format!("the history database is not writable: {e}")))?;
+    if state.history.as_ref().is_some_and(|h| !h.writes_ok()) {
+        return Err(ApiError::Unavailable(
+            "the history database is not writable: the last batch failed".into(),
+        ));
+    }
+    let stopped: Vec<&str> = state
+        .loops
+        .iter()
+        .filter(|l| l.status.has_changed().is_err())
+        .map(|l| l.config.name.as_str())
+        .collect();
+    if !stopped.is_empty() {
+        return Err(ApiError::Unavailable(format!("loops no longer running: {}", stopped.join(", "))));
     }
     let waiting: Vec<String> =
         state.loops.iter().filter(|l| l.status.borrow().ticks == 0).map(|l| l.config.name.clone()).collect();

@@ -200,9 +200,7 @@ pub fn router(state: ApiState) -> Router {
         .route("/", get(page::status_page))
         .route_layer(middleware::from_fn_with_state(state.clone(), count_request))
         .fallback(unmatched)
-        .method_not_allowed_fallback(|method: axum::http::Method, uri: axum::http::Uri| async move {
-            ApiError::MethodNotAllowed(format!("{} does not take {method}", uri.path()))
-        })
+        .method_not_allowed_fallback(not_allowed)
         .with_state(state)
 }
 
@@ -213,6 +211,17 @@ async fn count_request(State(state): State<ApiState>, request: Request, next: Ne
     let route = route.as_deref().unwrap_or(UNMATCHED_ROUTE);
     state.metrics.http_requests.with_label_values(&[route, response.status().as_str()]).inc();
     response
+}
+
+async fn not_allowed(
+    State(state): State<ApiState>,
+    matched: Option<MatchedPath>,
+    method: axum::http::Method,
+    uri: axum::http::Uri,
+) -> ApiError {
+    let route = matched.as_ref().map_or(UNMATCHED_ROUTE, MatchedPath::as_str);
+    state.metrics.http_requests.with_label_values(&[route, "405"]).inc();
+    ApiError::MethodNotAllowed(format!("{} does not take {method}", uri.path()))
 }
 
 async fn unmatched(State(state): State<ApiState>, uri: axum::http::Uri) -> ApiError {

@@ -301,6 +301,22 @@ fn validate_input(config: &Config, l: &LoopConfig, input: &InputConfig, path: &s
     if limits_ok && let Some(why) = unencodable(&w.codec, limits) {
         p.at(&format!("{path}.write"), why);
     }
+    // Common practice, no single source: an integer register needs about ten steps per
+    // dither amplitude, or rounding turns the sine into a square wave and setpoints jump.
+    let integer = !matches!(w.codec.kind, RegisterType::F32);
+    if integer && input.dither_amplitude > 0.0 && w.codec.scale.abs() > input.dither_amplitude / 10.0 {
+        p.at(
+            &format!("{path}.write.scale"),
+            format!(
+                "a {} register steps by {} while the dither amplitude is {}: use a finer scale \
+                 (at most {}) or an f32 register",
+                w.codec.kind,
+                show(w.codec.scale.abs()),
+                show(input.dither_amplitude),
+                show(input.dither_amplitude / 10.0)
+            ),
+        );
+    }
     for (key, value) in [
         ("max_rate_per_s", input.max_rate_per_s),
         ("dither_amplitude", input.dither_amplitude),

@@ -37,31 +37,69 @@ pub fn decode(codec: &Codec, words: &[u16]) -> f64 {
 /// nearest integer for integer types. Refuses what the type cannot hold rather than
 /// clipping it, so a wrong scale never writes a wrong setpoint.
 pub fn encode(codec: &Codec, value: f64) -> Result<Vec<u16>, EncodeError> {
-    let fail = |why| EncodeError { value, kind: codec.kind, scale: codec.scale, offset: codec.offset, why };
+    let raw = raw_value(codec, value)?;
+    let nearest = match codec.kind {
+        RegisterType::F32 => f64::from(raw as f32),
+        _ => raw.round(),
+    };
+    words(codec, nearest).ok_or_else(|| refusal(codec, value, "the raw value is outside the type's range"))
+}
+
+/// Like [`encode`], but the value the registers hold stays inside `[min, max]`: where
+/// rounding to the register's resolution would step past a bound, the neighbouring
+/// register value inside is taken.
+pub fn encode_within(codec: &Codec, value: f64, min: f64, max: f64) -> Result<Vec<u16>, EncodeError> {
+    let raw = raw_value(codec, value)?;
+    let candidates = match codec.kind {
+        RegisterType::F32 => {
+            let f = raw as f32;
+            [f64::from(f), f64::from(f.next_down()), f64::from(f.next_up())]
+        }
+        _ => [raw.round(), raw.floor(), raw.ceil()],
+    };
+    let mut any = false;
+    for candidate in candidates {
+        if let Some(w) = words(codec, candidate) {
+            any = true;
+            if (min..=max).contains(&decode(codec, &w)) {
+                return Ok(w);
+            }
+        }
+    }
+    let why = if any {
+        "no register value lies within the bounds"
+    } else {
+        "the raw value is outside the type's range"
+    };
+    Err(refusal(codec, value, why))
+}
+
+fn refusal(codec: &Codec, value: f64, why: &'static str) -> EncodeError {
+    EncodeError { value, kind: codec.kind, scale: codec.scale, offset: codec.offset, why }
+}
+
+fn raw_value(codec: &Codec, value: f64) -> Result<f64, EncodeError> {
     if !value.is_finite() {
-        return Err(fail("the value is not a finite number"));
+        return Err(refusal(codec, value, "the value is not a finite number"));
     }
     let raw = (value - codec.offset) / codec.scale;
-    if !raw.is_finite() {
-        return Err(fail("the raw value is not a finite number"));
-    }
-    let integer = |lo: f64, hi: f64| {
-        let r = raw.round();
-        if (lo..=hi).contains(&r) { Ok(r) } else { Err(fail("the raw value is outside the type's range")) }
-    };
-    Ok(match codec.kind {
-        RegisterType::U16 => vec![integer(0.0, f64::from(u16::MAX))? as u16],
-        RegisterType::I16 => vec![integer(f64::from(i16::MIN), f64::from(i16::MAX))? as i16 as u16],
-        RegisterType::U32 => split(codec.word_order, integer(0.0, f64::from(u32::MAX))? as u32),
-        RegisterType::I32 => {
-            split(codec.word_order, integer(f64::from(i32::MIN), f64::from(i32::MAX))? as i32 as u32)
+    if raw.is_finite() { Ok(raw) } else { Err(refusal(codec, value, "the raw value is not a finite number")) }
+}
+
+/// The registers of an already rounded raw value, or `None` when the type cannot hold it.
+fn words(codec: &Codec, raw: f64) -> Option<Vec<u16>> {
+    let fits = |lo: f64, hi: f64| (lo..=hi).contains(&raw);
+    Some(match codec.kind {
+        RegisterType::U16 if fits(0.0, f64::from(u16::MAX)) => vec![raw as u16],
+        RegisterType::I16 if fits(f64::from(i16::MIN), f64::from(i16::MAX)) => vec![raw as i16 as u16],
+        RegisterType::U32 if fits(0.0, f64::from(u32::MAX)) => split(codec.word_order, raw as u32),
+        RegisterType::I32 if fits(f64::from(i32::MIN), f64::from(i32::MAX)) => {
+            split(codec.word_order, raw as i32 as u32)
         }
-        RegisterType::F32 => {
-            if raw.abs() > f64::from(f32::MAX) {
-                return Err(fail("the raw value is outside the f32 range"));
-            }
+        RegisterType::F32 if raw.abs() <= f64::from(f32::MAX) => {
             split(codec.word_order, (raw as f32).to_bits())
         }
+        _ => return None,
     })
 }
 
@@ -127,5 +165,18 @@ mod tests {
         let scaled = Codec { kind: RegisterType::I16, word_order: WordOrder::Big, scale: 0.001, offset: 0.0 };
         let e = encode(&scaled, 40.0).unwrap_err();
         assert!(e.to_string().contains("40 cannot be written as i16 with scale 0.001"), "{e}");
+    }
+
+    #[test]
+    fn rounding_to_the_register_never_steps_past_a_bound() {
+        let c = Codec { kind: RegisterType::U16, word_order: WordOrder::Big, scale: 0.1, offset: 0.0 };
+        // 5.96 rounds to 6.0, past a bound at 5.97: the register gets 5.9 instead.
+        let w = encode_within(&c, 5.96, 1.0, 5.97).unwrap();
+        assert!((decode(&c, &w) - 5.9).abs() < 1e-12);
+        assert!(encode_within(&c, 5.96, 5.91, 5.97).is_err(), "no step of 0.1 lies in [5.91, 5.97]");
+        let f = Codec { kind: RegisterType::F32, word_order: WordOrder::Big, scale: 1.0, offset: 0.0 };
+        let max = 0.1f64; // not exactly representable in f32, which rounds it up
+        let w = encode_within(&f, max, 0.0, max).unwrap();
+        assert!(decode(&f, &w) <= max);
     }
 }

@@ -19,10 +19,9 @@ pub struct HttpLink {
 
 impl HttpLink {
     pub fn new(name: &str, url: &str, timeout: Duration, reporting: Reporting) -> Result<Self, LinkError> {
-        let client = reqwest::Client::builder().timeout(timeout).build().map_err(|e| LinkError::Http {
-            link: name.to_owned(),
-            url: url.to_owned(),
-            reason: e.to_string(),
+        // Straight to the device on the control network: no proxy from the environment.
+        let client = reqwest::Client::builder().timeout(timeout).no_proxy().build().map_err(|e| {
+            LinkError::Http { link: name.to_owned(), url: url.to_owned(), reason: e.to_string() }
         })?;
         Ok(HttpLink { name: name.to_owned(), url: url.to_owned(), client, reporting })
     }
@@ -55,9 +54,15 @@ impl HttpLink {
         if response.content_length().is_some_and(|n| n > MAX_BODY_BYTES as u64) {
             return Err(http(format!("the document is larger than {MAX_BODY_BYTES} bytes")));
         }
-        let body = response.bytes().await.map_err(|e| http(describe(&e)))?;
-        if body.len() > MAX_BODY_BYTES {
-            return Err(http(format!("the document is larger than {MAX_BODY_BYTES} bytes")));
+        // Read chunk by chunk, so a chunked answer without a length is cut off at the
+        // limit rather than held in memory whole.
+        let mut response = response;
+        let mut body = Vec::new();
+        while let Some(chunk) = response.chunk().await.map_err(|e| http(describe(&e)))? {
+            if body.len() + chunk.len() > MAX_BODY_BYTES {
+                return Err(http(format!("the document is larger than {MAX_BODY_BYTES} bytes")));
+            }
+            body.extend_from_slice(&chunk);
         }
         serde_json::from_slice(&body).map_err(|e| http(format!("the answer is not JSON: {e}")))
     }

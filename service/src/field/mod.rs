@@ -9,11 +9,12 @@ pub mod modbus;
 use std::collections::HashMap;
 use std::time::Duration;
 
-use crate::config::{Codec, Config, LinkKind, RegisterSpace, TagSource};
+use crate::config::{Codec, Config, LinkKind, Range, RegisterSpace, TagSource};
 use crate::report::Reporting;
 pub use error::{Function, LinkError};
 use http::HttpLink;
 use modbus::ModbusLink;
+pub use modbus::Urgency;
 
 /// The protocol's limit on registers per read request (Modbus Application Protocol
 /// Specification V1.1b3, §6.3 and §6.4).
@@ -34,7 +35,8 @@ impl Links {
             let timeout = Duration::from_millis(link.timeout_ms);
             match &link.kind {
                 LinkKind::ModbusTcp { address, unit } => {
-                    let m = ModbusLink::reporting_to(&link.name, address, *unit, timeout, reporting.clone());
+                    let m = ModbusLink::reporting_to(&link.name, address, *unit, timeout, reporting.clone())
+                        .with_backoff_cap(fastest_tick(config, &link.name));
                     links.modbus.insert(link.name.clone(), m);
                 }
                 LinkKind::HttpGet { url } => {
@@ -56,6 +58,18 @@ impl Links {
     pub fn names(&self) -> impl Iterator<Item = &str> {
         self.modbus.keys().chain(self.http.keys()).map(String::as_str)
     }
+}
+
+/// The shortest tick of the loops that use a link: its reconnection backoff is capped
+/// there, so a loop retries its link (and its fallback write) every tick.
+fn fastest_tick(config: &Config, link: &str) -> Duration {
+    let uses = |l: &crate::config::LoopConfig| {
+        l.objective.names().iter().chain(&l.permit).any(|t| config.tag(t).is_some_and(|t| t.link == link))
+            || l.inputs.iter().any(|i| i.write.link == link)
+            || l.heartbeat.as_ref().is_some_and(|h| h.link == link)
+    };
+    let fastest = config.loops.iter().filter(|l| uses(l)).map(|l| l.tick_s).fold(f64::INFINITY, f64::min);
+    if fastest.is_finite() { Duration::from_secs_f64(fastest) } else { modbus::BACKOFF_CAP }
 }
 
 /// One value to read from registers, and where its value goes.
@@ -205,15 +219,20 @@ impl LoopIo {
         Ok(())
     }
 
-    /// Writes input `input`'s setpoint, refusing values its register type cannot hold.
-    pub async fn write(&self, input: usize, value: f64) -> Result<(), LinkError> {
+    /// Writes input `input`'s setpoint, refusing values its register type cannot hold and
+    /// keeping the value the register ends up with inside `bounds`.
+    pub async fn write(
+        &self,
+        input: usize,
+        value: f64,
+        bounds: Range,
+        urgency: Urgency,
+    ) -> Result<(), LinkError> {
         let Some(target) = self.writes.get(input) else { return Ok(()) };
-        let words = codec::encode(&target.codec, value).map_err(|source| LinkError::Encode {
-            link: target.link.name().to_owned(),
-            address: target.register,
-            source,
+        let words = codec::encode_within(&target.codec, value, bounds.min, bounds.max).map_err(|source| {
+            LinkError::Encode { link: target.link.name().to_owned(), address: target.register, source }
         })?;
-        target.link.write(target.register, &words).await
+        target.link.write(target.register, &words, urgency).await
     }
 
     /// Reads back the setpoint currently in input `input`'s register.

@@ -16,7 +16,8 @@ use crate::report::Reporting;
 
 /// First wait before reconnecting after a failure; doubles per failure up to the cap.
 const BACKOFF_FIRST: Duration = Duration::from_millis(200);
-const BACKOFF_CAP: Duration = Duration::from_secs(5);
+/// The longest wait, unless the link's loops tick faster (see [`ModbusLink::with_backoff_cap`]).
+pub const BACKOFF_CAP: Duration = Duration::from_secs(5);
 
 /// A cheap-to-clone handle on one Modbus/TCP server.
 #[derive(Clone)]
@@ -29,6 +30,7 @@ struct Inner {
     address: String,
     unit: u8,
     timeout: Duration,
+    backoff_cap: Duration,
     reporting: Reporting,
     /// Held for the whole of a request, so requests on a link never overlap.
     connection: Mutex<Connection>,
@@ -37,8 +39,19 @@ struct Inner {
 #[derive(Default)]
 struct Connection {
     context: Option<Context>,
+    /// Failures since the last answer; a connection that is accepted but never answers
+    /// does not reset it, so a hung peer backs off like a dead one.
     failures: u32,
     retry_at: Option<Instant>,
+    connected_once: bool,
+}
+
+/// Whether a request waits out the reconnection backoff.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum Urgency {
+    Normal,
+    /// Try to connect now whatever the backoff says (the writes of a stopping service).
+    Now,
 }
 
 /// One request, before it is sent.
@@ -106,10 +119,21 @@ impl ModbusLink {
                 address: address.to_owned(),
                 unit,
                 timeout,
+                backoff_cap: BACKOFF_CAP,
                 reporting,
                 connection: Mutex::default(),
             }),
         }
+    }
+
+    /// Caps the reconnection backoff, so that a link whose loops tick faster than the
+    /// default cap is retried at least once per tick (a fallback write must reach the PLC
+    /// on the first tick it answers again).
+    pub fn with_backoff_cap(mut self, cap: Duration) -> Self {
+        if let Some(inner) = Arc::get_mut(&mut self.inner) {
+            inner.backoff_cap = cap.min(BACKOFF_CAP);
+        }
+        self
     }
 
     pub fn name(&self) -> &str {
@@ -118,22 +142,22 @@ impl ModbusLink {
 
     /// Reads `count` registers from `start` (at most 125, the protocol's limit).
     pub async fn read(&self, space: RegisterSpace, start: u16, count: u16) -> Result<Vec<u16>, LinkError> {
-        self.request(Request::Read(space, start, count)).await
+        self.request(Request::Read(space, start, count), Urgency::Normal).await
     }
 
     /// Writes registers from `start`: one with function 0x06, more with 0x10.
-    pub async fn write(&self, start: u16, words: &[u16]) -> Result<(), LinkError> {
-        self.request(Request::Write(start, words)).await.map(|_| ())
+    pub async fn write(&self, start: u16, words: &[u16], urgency: Urgency) -> Result<(), LinkError> {
+        self.request(Request::Write(start, words), urgency).await.map(|_| ())
     }
 
     #[tracing::instrument(level = "trace", skip_all, fields(link = %self.inner.name))]
-    async fn request(&self, request: Request<'_>) -> Result<Vec<u16>, LinkError> {
+    async fn request(&self, request: Request<'_>, urgency: Urgency) -> Result<Vec<u16>, LinkError> {
         let inner = &*self.inner;
         let mut connection = inner.connection.lock().await;
         let context = match connection.context.as_mut() {
             Some(context) => context,
             None => {
-                let context = self.connect(&mut connection).await?;
+                let context = self.connect(&mut connection, urgency).await?;
                 connection.context.insert(context)
             }
         };
@@ -144,12 +168,14 @@ impl ModbusLink {
         let failed = match answer {
             Ok(Ok(Ok(words))) => {
                 inner.reporting.link_request(&inner.name, seconds, None);
+                self.note_answer(&mut connection);
                 return Ok(words);
             }
             // An exception is a proper answer: the connection stays up.
             Ok(Ok(Err(code))) => {
                 let e = exception(&inner.name, function, address, code);
                 inner.reporting.link_request(&inner.name, seconds, Some(&e));
+                self.note_answer(&mut connection);
                 return Err(e);
             }
             Ok(Err(e)) => {
@@ -170,14 +196,14 @@ impl ModbusLink {
         Err(failed)
     }
 
-    async fn connect(&self, connection: &mut Connection) -> Result<Context, LinkError> {
+    async fn connect(&self, connection: &mut Connection, urgency: Urgency) -> Result<Context, LinkError> {
         let inner = &*self.inner;
         if let Some(at) = connection.retry_at {
             let now = Instant::now();
-            if now < at {
+            if now < at && urgency == Urgency::Normal {
                 let down =
                     LinkError::Down { link: inner.name.clone(), retry_in_ms: (at - now).as_millis() as u64 };
-                inner.reporting.link_request(&inner.name, 0.0, Some(&down));
+                inner.reporting.link_error(&inner.name, &down);
                 return Err(down);
             }
         }
@@ -198,25 +224,34 @@ impl ModbusLink {
         };
         match result {
             Ok(context) => {
-                if connection.failures > 0 {
-                    tracing::info!(link = %inner.name, address = %inner.address, "link connected again");
-                    let detail = serde_json::json!({"link": inner.name, "address": inner.address});
-                    inner.reporting.event(None, "link_up", detail, "system");
+                if connection.connected_once {
+                    tracing::debug!(link = %inner.name, address = %inner.address, "link connected again");
                 } else {
                     tracing::info!(link = %inner.name, address = %inner.address, "link connected");
+                    connection.connected_once = true;
                 }
-                connection.failures = 0;
-                connection.retry_at = None;
                 Ok(context)
             }
             Err(reason) => {
                 let error =
                     LinkError::Connect { link: inner.name.clone(), address: inner.address.clone(), reason };
-                inner.reporting.link_request(&inner.name, 0.0, Some(&error));
+                inner.reporting.link_error(&inner.name, &error);
                 self.note_failure(connection, &error);
                 Err(error)
             }
         }
+    }
+
+    /// An answer came: a link that was failing is up again.
+    fn note_answer(&self, connection: &mut Connection) {
+        if connection.failures > 0 {
+            let inner = &*self.inner;
+            tracing::info!(link = %inner.name, address = %inner.address, "link answers again");
+            let detail = serde_json::json!({"link": inner.name, "address": inner.address});
+            inner.reporting.event(None, "link_up", detail, "system");
+        }
+        connection.failures = 0;
+        connection.retry_at = None;
     }
 
     /// Schedules the next connection attempt; logs the first failure of a run of them
@@ -230,7 +265,8 @@ impl ModbusLink {
             tracing::debug!(link = %self.inner.name, error = %error, "link still down");
         }
         connection.failures = connection.failures.saturating_add(1);
-        connection.retry_at = Some(Instant::now() + backoff(connection.failures, rand::random::<f64>()));
+        let wait = backoff(connection.failures, rand::random::<f64>()).min(self.inner.backoff_cap);
+        connection.retry_at = Some(Instant::now() + wait);
     }
 }
 
@@ -325,7 +361,7 @@ mod tests {
         })
         .await;
         let link = ModbusLink::new("plc", &addr, 1, Duration::from_millis(200));
-        let e = link.write(200, &[1, 2]).await.unwrap_err();
+        let e = link.write(200, &[1, 2], Urgency::Normal).await.unwrap_err();
         assert!(matches!(e.kind(), "transport" | "timeout"), "{e}");
         assert!(e.to_string().contains("write multiple registers (0x10) at register 200"), "{e}");
     }

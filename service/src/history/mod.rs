@@ -32,6 +32,8 @@ const STREAM_PAGE_ROWS: u32 = 1000;
 pub struct History {
     pool: SqlitePool,
     path: Arc<Path>,
+    /// Whether the writer's last batch was committed (true until one fails).
+    writes_ok: Arc<std::sync::atomic::AtomicBool>,
 }
 
 impl fmt::Debug for History {
@@ -67,6 +69,9 @@ pub struct SampleRecord {
     pub state: &'static str,
     /// In config order, which is the order they come back in.
     pub inputs: Vec<InputSample>,
+    /// Whether the estimates were in force (the loop wrote this tick): only those are
+    /// kept as the last estimates a restarted loop may resume from.
+    pub resumable: bool,
 }
 
 /// One input's values in a tick.
@@ -159,7 +164,7 @@ impl History {
             .run(&pool)
             .await
             .map_err(|e| HistoryError::Migrate { path: path.to_owned(), reason: e.to_string() })?;
-        Ok(History { pool, path: path.into() })
+        Ok(History { pool, path: path.into(), writes_ok: Arc::new(std::sync::atomic::AtomicBool::new(true)) })
     }
 
     /// The database file.
@@ -173,7 +178,7 @@ impl History {
         settings: WriterSettings,
         metrics: Option<Arc<crate::metrics::Metrics>>,
     ) -> (HistorySender, Writer) {
-        writer::channel((*self.pool.connect_options()).clone(), settings, metrics)
+        writer::channel((*self.pool.connect_options()).clone(), settings, metrics, self.writes_ok.clone())
     }
 
     /// Samples of one loop with `since_ms <= at < until_ms` (either optional), oldest
@@ -299,7 +304,13 @@ impl History {
             .collect()
     }
 
-    /// Whether a write succeeds right now (for `/readyz`): takes the write lock and makes
+    /// Whether the writer's last batch was committed (for `/readyz`): cheap, and takes no
+    /// lock, so a probe can never hold up the writer.
+    pub fn writes_ok(&self) -> bool {
+        self.writes_ok.load(std::sync::atomic::Ordering::Relaxed)
+    }
+
+    /// Whether a write succeeds right now: takes the write lock and makes
     /// a change in a transaction that is then rolled back.
     pub async fn check_writable(&self) -> Result<(), HistoryError> {
         let mut tx = self.pool.begin_with("BEGIN IMMEDIATE").await?;

@@ -28,6 +28,7 @@ fn settings(queue_capacity: usize) -> WriterSettings {
 
 fn sample(loop_name: &str, at_ms: i64, inputs: &[(&str, f64, f64, f64)]) -> SampleRecord {
     SampleRecord {
+        resumable: true,
         loop_name: loop_name.into(),
         at_ms,
         objective: Some(at_ms as f64 / 1000.0),

@@ -149,6 +149,8 @@ pub struct Writer {
     events: Vec<EventRecord>,
     retention_days: u32,
     metrics: Option<Arc<Metrics>>,
+    /// Shared with [`super::History::writes_ok`]: whether the last batch was committed.
+    writes_ok: Arc<std::sync::atomic::AtomicBool>,
     /// The batch's latest finite estimates, by loop.
     latest: HashMap<Arc<str>, Vec<Latest>>,
     /// Each state's text shared, so binding it allocates nothing.
@@ -168,6 +170,7 @@ pub(super) fn channel(
     options: SqliteConnectOptions,
     settings: WriterSettings,
     metrics: Option<Arc<Metrics>>,
+    writes_ok: Arc<std::sync::atomic::AtomicBool>,
 ) -> (HistorySender, Writer) {
     let (samples, samples_rx) = mpsc::channel(settings.queue_capacity.max(1));
     let (events, events_rx) = mpsc::unbounded_channel();
@@ -182,6 +185,7 @@ pub(super) fn channel(
         events: Vec::new(),
         retention_days: settings.retention_days,
         metrics,
+        writes_ok,
         latest: HashMap::new(),
         states: Vec::new(),
     };
@@ -198,7 +202,9 @@ impl Writer {
         if !self.wait().await {
             return None;
         }
-        Some(self.write_batch().await)
+        let written = self.write_batch().await;
+        self.writes_ok.store(written.is_ok(), std::sync::atomic::Ordering::Relaxed);
+        Some(written)
     }
 
     /// Steps until `cancel`, then writes everything still queued before returning, so
@@ -363,7 +369,7 @@ impl Writer {
         for inputs in self.latest.values_mut() {
             inputs.clear();
         }
-        for s in &self.samples {
+        for s in self.samples.iter().filter(|s| s.resumable) {
             let inputs = match self.latest.get_mut(&*s.loop_name) {
                 Some(inputs) => inputs,
                 None => self.latest.entry(s.loop_name.clone()).or_default(),
@@ -386,7 +392,9 @@ impl Writer {
     pub(super) async fn write_retrying(&mut self) {
         let mut delay = FIRST_RETRY_DELAY;
         for attempt in 1..=WRITE_ATTEMPTS {
-            match self.write_batch().await {
+            let result = self.write_batch().await;
+            self.writes_ok.store(result.is_ok(), std::sync::atomic::Ordering::Relaxed);
+            match result {
                 Ok(written) => {
                     if attempt > 1 {
                         tracing::info!(attempt, "history batch written after retrying");

@@ -154,6 +154,12 @@ impl Control {
         self.mode = mode;
     }
 
+    /// Starts the filters again at the next seeking tick, after a gap in the ticks or a
+    /// setpoint that did not reach the plant.
+    pub fn restart_filters(&mut self) {
+        self.restart_filters = true;
+    }
+
     /// Changes an input's operating bounds; the estimate walks into them at the rate limit.
     pub fn set_bounds(&mut self, input: usize, bounds: Range) {
         self.seeker.set_bounds(input, bounds);

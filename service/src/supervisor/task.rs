@@ -2,7 +2,7 @@
 //! [`run`] only decides when to ask.
 
 use std::sync::Arc;
-use std::time::{Duration, SystemTime};
+use std::time::Duration;
 
 use tokio::sync::{mpsc, oneshot, watch};
 use tokio::time::{Instant, MissedTickBehavior};
@@ -11,8 +11,8 @@ use tokio_util::sync::CancellationToken;
 use super::control::{Control, TickReport};
 use super::status::{InputStatus, LoopStatus};
 use crate::config::{Config, LoopConfig, Mode, Range};
-use crate::field::{LinkError, Links, LoopIo};
-use crate::history::{InputSample, SampleRecord, now_ms};
+use crate::field::{LinkError, Links, LoopIo, Urgency};
+use crate::history::{InputSample, SampleRecord, now_ms, rfc3339};
 pub use crate::report::Reporting;
 
 /// Why a running loop refused a command.
@@ -86,7 +86,8 @@ pub struct LoopTask {
     status: watch::Sender<LoopStatus>,
     commands: mpsc::Receiver<Command>,
     reporting: Reporting,
-    objective_at: Option<SystemTime>,
+    /// Unix milliseconds of the last successful read of the objective's tags.
+    objective_at: Option<i64>,
     last_tick: Option<u64>,
     skipped_ticks: u64,
     /// Whether the last write of each input failed, so each failure is logged once.
@@ -142,6 +143,9 @@ impl LoopTask {
         {
             self.skipped_ticks += n - last - 1;
             tracing::debug!(r#loop = %self.name, skipped = n - last - 1, "late ticks skipped");
+            // The objective now answers a setpoint older than one tick: the demodulation
+            // would pair it with the wrong phase.
+            self.control.restart_filters();
         }
         self.last_tick = Some(n);
         if !self.control.is_started() {
@@ -151,7 +155,7 @@ impl LoopTask {
         self.note_read(&read);
         let report = self.control.tick(n, read.is_ok().then_some(self.values.as_slice()));
         if read.is_ok() {
-            self.objective_at = Some(SystemTime::now());
+            self.objective_at = Some(now_ms());
         }
         if report.write {
             self.write_applied().await;
@@ -222,12 +226,25 @@ impl LoopTask {
     async fn write_applied(&mut self) {
         for i in 0..self.config.inputs.len() {
             let value = self.control.inputs()[i].applied;
-            self.write_input(i, value).await;
+            if self.write_input(i, value, Urgency::Normal).await.is_err() {
+                // The plant did not get this tick's dithered setpoint.
+                self.control.restart_filters();
+            }
         }
     }
 
-    async fn write_input(&mut self, i: usize, value: f64) {
-        let result = self.io.write(i, value).await;
+    /// Writes the estimates without dither (when a loop stops writing, so no dither is
+    /// left behind in the PLC).
+    async fn write_estimates(&mut self) {
+        for i in 0..self.config.inputs.len() {
+            let input = self.control.inputs()[i];
+            let _ = self.write_input(i, input.guard.clamp(input.estimate), Urgency::Normal).await;
+        }
+    }
+
+    async fn write_input(&mut self, i: usize, value: f64, urgency: Urgency) -> Result<(), LinkError> {
+        let bounds = self.control.inputs()[i].guard.bounds;
+        let result = self.io.write(i, value, bounds, urgency).await;
         let input = &self.config.inputs[i].name;
         match (&result, self.write_failing[i]) {
             (Err(e), false) if e.is_connection() => {
@@ -242,6 +259,7 @@ impl LoopTask {
             _ => {}
         }
         self.write_failing[i] = result.is_err();
+        result
     }
 
     /// Applies a command between ticks; it shows in the next tick's decisions.
@@ -267,6 +285,12 @@ impl LoopTask {
                 } else {
                     Vec::new()
                 };
+                let stops_writing = matches!(from, Mode::Seeking | Mode::Holding)
+                    && !matches!(mode, Mode::Seeking | Mode::Holding)
+                    && self.control.is_started();
+                if stops_writing {
+                    self.write_estimates().await;
+                }
                 self.control.set_mode(mode, &read_back);
                 if from != mode {
                     tracing::info!(r#loop = %self.name, from = %from, to = %mode, actor = %actor, "mode changed");
@@ -308,20 +332,31 @@ impl LoopTask {
     }
 
     /// Writes the `on_shutdown` values of a loop that is writing; called once on stop.
+    /// The link's backoff is ignored and each write is tried a few times, and the event
+    /// says for each input whether the value reached the PLC.
     pub async fn shutdown(&mut self) {
+        const ATTEMPTS: usize = 3;
         let written = match self.control.shutdown_values() {
             Some(values) => {
+                let mut by_input = serde_json::Map::new();
                 for (i, &value) in values.iter().enumerate() {
-                    self.write_input(i, value).await;
+                    let mut ok = false;
+                    for attempt in 0..ATTEMPTS {
+                        if attempt > 0 {
+                            tokio::time::sleep(Duration::from_millis(300)).await;
+                        }
+                        if self.write_input(i, value, Urgency::Now).await.is_ok() {
+                            ok = true;
+                            break;
+                        }
+                    }
+                    let name = &self.config.inputs[i].name;
+                    if !ok {
+                        tracing::error!(r#loop = %self.name, input = %name, value, "shutdown setpoint NOT written: the PLC keeps its last setpoint");
+                    }
+                    by_input.insert(name.clone(), serde_json::json!({"value": value, "written": ok}));
                 }
-                tracing::info!(r#loop = %self.name, on_shutdown = %self.config.on_shutdown, "shutdown setpoints written");
-                let by_input: serde_json::Map<_, _> = self
-                    .config
-                    .inputs
-                    .iter()
-                    .zip(&values)
-                    .map(|(c, v)| (c.name.clone(), serde_json::json!(v)))
-                    .collect();
+                tracing::info!(r#loop = %self.name, on_shutdown = %self.config.on_shutdown, "shutdown setpoints done");
                 serde_json::Value::Object(by_input)
             }
             None => serde_json::Value::Null,
@@ -329,13 +364,15 @@ impl LoopTask {
         self.reporting.event(
             Some(&self.name),
             "loop_stopped",
-            serde_json::json!({"on_shutdown": self.config.on_shutdown.as_str(), "written": written}),
+            serde_json::json!({"on_shutdown": self.config.on_shutdown.as_str(), "setpoints": written}),
             "system",
         );
     }
 
     fn publish(&self) {
         let c = &self.control;
+        // Before a loop has started there are no setpoints to show, only what it reads.
+        let known = |v: f64| if c.is_started() { v } else { f64::NAN };
         let inputs = self
             .config
             .inputs
@@ -343,9 +380,9 @@ impl LoopTask {
             .zip(c.inputs())
             .map(|(cfg, i)| InputStatus {
                 name: cfg.name.clone(),
-                applied: i.applied,
-                estimate: i.estimate,
-                gradient: i.gradient,
+                applied: known(i.applied),
+                estimate: known(i.estimate),
+                gradient: known(i.gradient),
                 bounds: i.guard.bounds.into(),
                 limits: cfg.limits.into(),
                 safe: cfg.safe,
@@ -360,7 +397,7 @@ impl LoopTask {
             method: self.config.method.as_str(),
             permitted: true,
             objective: c.objective(),
-            objective_at: self.objective_at.map(|t| humantime::format_rfc3339_millis(t).to_string()),
+            objective_at: self.objective_at.map(rfc3339),
             ticks: c.ticks(),
             skipped_ticks: self.skipped_ticks,
             inputs,
@@ -374,14 +411,18 @@ impl LoopTask {
             if let Some(j) = report.objective {
                 m.objective.with_label_values(&[&*self.name]).set(j);
             }
-            for (name, i) in self.input_names.iter().zip(c.inputs()) {
-                m.setpoint.with_label_values(&[&*self.name, name]).set(i.applied);
-                m.estimate.with_label_values(&[&*self.name, name]).set(i.estimate);
-                m.gradient.with_label_values(&[&*self.name, name]).set(i.gradient);
+            if c.is_started() {
+                for (name, i) in self.input_names.iter().zip(c.inputs()) {
+                    m.setpoint.with_label_values(&[&*self.name, name]).set(i.applied);
+                    m.estimate.with_label_values(&[&*self.name, name]).set(i.estimate);
+                    m.gradient.with_label_values(&[&*self.name, name]).set(i.gradient);
+                }
             }
             m.set_state(&self.name, c.state());
         }
         if let Some(h) = &self.reporting.history {
+            let started = c.is_started();
+            let known = |v: f64| if started { v } else { f64::NAN };
             h.sample(SampleRecord {
                 loop_name: self.name.clone(),
                 at_ms: now_ms(),
@@ -393,11 +434,12 @@ impl LoopTask {
                     .zip(c.inputs())
                     .map(|(name, i)| InputSample {
                         name: name.clone(),
-                        applied: i.applied,
-                        estimate: i.estimate,
-                        gradient: i.gradient,
+                        applied: known(i.applied),
+                        estimate: known(i.estimate),
+                        gradient: known(i.gradient),
                     })
                     .collect(),
+                resumable: report.write,
             });
         }
     }
