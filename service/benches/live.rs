@@ -104,7 +104,7 @@ fn main() -> anyhow::Result<()> {
         let links = Links::new(&config, &Reporting::default())?;
         let mut handles = Vec::new();
         for index in 0..loops.min(config.loops.len()) {
-            let (task, _handle) = LoopTask::new(&config, index, &links, Reporting::default());
+            let (task, _handle) = LoopTask::new(&config, index, &links, Reporting::default(), None);
             let mut timed = Timed { task, durations: durations.clone() };
             let (late, cancel, skipped) = (lateness.clone(), cancel.clone(), skipped.clone());
             handles.push(tokio::spawn(async move {

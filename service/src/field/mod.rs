@@ -144,6 +144,7 @@ struct WriteTarget {
 pub struct LoopIo {
     groups: Vec<ReadGroup>,
     writes: Vec<WriteTarget>,
+    heartbeat: Option<(ModbusLink, u16)>,
 }
 
 impl LoopIo {
@@ -188,7 +189,11 @@ impl LoopIo {
                 })
             })
             .collect();
-        LoopIo { groups, writes }
+        let heartbeat = config.loops[loop_index]
+            .heartbeat
+            .as_ref()
+            .and_then(|h| links.modbus.get(&h.link).map(|link| (link.clone(), h.holding_register)));
+        LoopIo { groups, writes, heartbeat }
     }
 
     /// Reads every tag into `values` (in the order given to `new`).
@@ -233,6 +238,14 @@ impl LoopIo {
             LinkError::Encode { link: target.link.name().to_owned(), address: target.register, source }
         })?;
         target.link.write(target.register, &words, urgency).await
+    }
+
+    /// Writes the heartbeat counter, when the loop has one (function 0x06).
+    pub async fn write_heartbeat(&self, counter: u16) -> Result<(), LinkError> {
+        match &self.heartbeat {
+            Some((link, register)) => link.write(*register, &[counter], Urgency::Normal).await,
+            None => Ok(()),
+        }
     }
 
     /// Reads back the setpoint currently in input `input`'s register.

@@ -22,7 +22,7 @@ use anyhow::Context;
 use crate::config::{Config, FileProblems, LoopConfig, Mode, Problem, Range};
 use crate::seek::guard::ObjectiveFault;
 use crate::sim::{Plant, PlantSpec};
-use crate::supervisor::control::Control;
+use crate::supervisor::control::{Cause, Control, Reading, Transition};
 use plot::{InputTrace, LoopTrace};
 pub use report::{Event, FinalInput, LoopReport, Report, human_duration};
 pub use truth::Truth;
@@ -118,8 +118,16 @@ impl Rehearsal {
             let read_back: Vec<Option<f64>> =
                 truth.plant_inputs().iter().map(|&pi| Some(model.inputs()[pi])).collect();
             let mut control = Control::new(l);
-            control.set_mode(Mode::Seeking, &read_back);
-            control.start(&read_back);
+            // A rehearsal seeks whatever the start mode; a fault still trips it.
+            let _ = control.ask(Mode::Seeking);
+            let estimates: Vec<f64> = l
+                .inputs
+                .iter()
+                .zip(&read_back)
+                .map(|(i, r)| crate::seek::guard::initial_estimate(*r, i.bounds, i.safe))
+                .collect();
+            control.start(0.0, &estimates);
+            control.take_transitions();
             loops.push(LoopRun {
                 config: l.clone(),
                 control,
@@ -191,15 +199,19 @@ impl LoopRun {
 
     fn tick(&mut self, t: f64, duration: f64, plant: &mut Plant) -> anyhow::Result<()> {
         self.truth.read_tags(plant, &mut self.tag_values);
-        let report = self.control.tick(self.tick, Some(&self.tag_values));
+        let report = self.control.tick(self.tick, t, Reading { tags: Some(&self.tag_values), permit: None });
         let measured = report.objective.unwrap_or(f64::NAN);
         if let Some(fault) = report.fault {
             self.stats.fault(t, fault, measured);
         }
         if report.write {
-            for (input, &pi) in self.control.inputs().iter().zip(self.truth.plant_inputs()) {
-                plant.set_input(pi, input.applied);
+            for (&value, &pi) in self.control.applied().iter().zip(self.truth.plant_inputs()) {
+                plant.set_input(pi, value);
             }
+            self.control.note_writes(true, t);
+        }
+        for transition in self.control.take_transitions() {
+            self.stats.transition(t, transition);
         }
         self.stats.bound_hits += u64::from(report.guard.at_bound);
         self.stats.rate_limited_ticks += u64::from(report.guard.rate_limited);
@@ -292,6 +304,23 @@ impl Stats {
         }
     }
 
+    fn transition(&mut self, t: f64, transition: Transition) {
+        if self.events.len() < EVENTS_KEPT {
+            let kind = match transition.cause {
+                Cause::Tripped(_) => "tripped",
+                Cause::Recovered => "recovered",
+                _ => "state_changed",
+            };
+            let reason = format!(
+                "{} -> {}: {}",
+                transition.from.as_str(),
+                transition.to.as_str(),
+                transition.cause.describe()
+            );
+            self.events.push(Event { t_s: t, kind, value: None, reason: Some(reason) });
+        }
+    }
+
     fn fault(&mut self, t: f64, fault: ObjectiveFault, value: f64) {
         self.faults += 1;
         if self.events.len() < EVENTS_KEPT {
@@ -299,6 +328,7 @@ impl Stats {
                 t_s: t,
                 kind: fault.as_str(),
                 value: value.is_finite().then_some(value),
+                reason: None,
             });
         }
     }

@@ -44,9 +44,14 @@ pub struct LoopReport {
 #[derive(Debug, Clone, Serialize)]
 pub struct Event {
     pub t_s: f64,
+    /// `objective_not_finite`, `objective_out_of_range`, or a state change of the loop
+    /// (`tripped`, `recovered`).
     pub kind: &'static str,
     /// The objective's value, when it was a number.
     pub value: Option<f64>,
+    /// For a state change: why, and the state it went to.
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub reason: Option<String>,
 }
 
 #[derive(Debug, Clone, Serialize)]
@@ -96,8 +101,13 @@ impl fmt::Display for LoopReport {
         writeln!(f, "  ticks rate-limited      {}", self.rate_limited_ticks)?;
         writeln!(f, "  objective faults        {}", self.objective_faults)?;
         for e in &self.events {
-            let value = e.value.map_or_else(|| "not a number".into(), |v| v.to_string());
-            writeln!(f, "    at {} s: {} ({value})", e.t_s, e.kind)?;
+            match &e.reason {
+                Some(reason) => writeln!(f, "    at {} s: {} ({reason})", e.t_s, e.kind)?,
+                None => {
+                    let value = e.value.map_or_else(|| "not a number".into(), |v| v.to_string());
+                    writeln!(f, "    at {} s: {} ({value})", e.t_s, e.kind)?
+                }
+            }
         }
         let width = self.inputs.iter().map(|i| i.name.len()).max().unwrap_or(0).max(5);
         writeln!(f, "  {:width$}  {:>14}  {:>14}", "input", "final estimate", "optimum")?;

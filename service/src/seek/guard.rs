@@ -111,9 +111,44 @@ pub fn check_objective(value: f64, plausible: Option<Range>) -> Result<f64, Obje
 /// Where a loop starts: the setpoint read back from the PLC when it is inside the
 /// bounds, else the configured safe value (clamped into the bounds).
 pub fn initial_estimate(read_back: Option<f64>, bounds: Range, safe: f64) -> f64 {
-    match read_back {
-        Some(v) if v.is_finite() && bounds.contains(v) => v,
-        _ => safe.max(bounds.min).min(bounds.max),
+    starting_point(None, read_back, bounds, safe).0
+}
+
+/// Where a starting estimate came from.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum Origin {
+    /// The last estimate stored in history, recent enough.
+    Stored,
+    /// The setpoint read back from the PLC.
+    ReadBack,
+    /// The configured safe value.
+    Safe,
+}
+
+impl Origin {
+    pub fn as_str(self) -> &'static str {
+        match self {
+            Origin::Stored => "stored",
+            Origin::ReadBack => "read_back",
+            Origin::Safe => "safe",
+        }
+    }
+}
+
+/// Where a (re)started loop begins: a stored estimate that is recent enough (the caller
+/// passes it only then) and inside the bounds, else the setpoint read back from the PLC
+/// when inside the bounds, else `safe` clamped into the bounds.
+pub fn starting_point(
+    stored: Option<f64>,
+    read_back: Option<f64>,
+    bounds: Range,
+    safe: f64,
+) -> (f64, Origin) {
+    let usable = |v: &f64| v.is_finite() && bounds.contains(*v);
+    match (stored.filter(usable), read_back.filter(usable)) {
+        (Some(v), _) => (v, Origin::Stored),
+        (None, Some(v)) => (v, Origin::ReadBack),
+        (None, None) => (safe.max(bounds.min).min(bounds.max), Origin::Safe),
     }
 }
 
@@ -165,6 +200,14 @@ mod tests {
     fn applied_setpoint_is_clamped_to_the_bounds() {
         assert_eq!(guard().applied(1.95, 0.1).value, 2.0);
         assert_eq!(guard().applied(f64::NAN, 0.1).value, 1.5);
+    }
+
+    #[test]
+    fn a_recent_stored_estimate_inside_the_bounds_comes_first() {
+        let b = Range { min: 1.0, max: 2.0 };
+        assert_eq!(starting_point(Some(1.7), Some(1.2), b, 1.5), (1.7, Origin::Stored));
+        assert_eq!(starting_point(Some(2.7), Some(1.2), b, 1.5), (1.2, Origin::ReadBack));
+        assert_eq!(starting_point(Some(f64::NAN), None, b, 1.5), (1.5, Origin::Safe));
     }
 
     #[test]

@@ -1,43 +1,61 @@
-//! The decisions of one loop, free of I/O and clocks: from the tag values read at a tick,
-//! what the core does and whether the setpoints are written. Shared by the live loop and
-//! the rehearsal.
+//! The decisions of one loop, free of I/O and clocks: from what was read at a tick (and
+//! the time, passed in), the watchdog's verdict, the state, what the core does and what
+//! is written. Shared by the live loop and the rehearsal.
 
-use crate::config::{LoopConfig, Mode, OnShutdown, Range};
+use crate::config::{LoopConfig, Mode, OnShutdown, OnTrip, Range};
 use crate::expr::Expr;
-use crate::seek::guard::{ObjectiveFault, check_objective, initial_estimate};
+use crate::seek::guard::{ObjectiveFault, check_objective};
 use crate::seek::{GuardActions, InputState, Seeker};
 
-/// What a loop is doing, as reported (`mode` is what was asked for).
-#[derive(Debug, Clone, Copy, PartialEq, Eq, Hash)]
-pub enum State {
-    Seeking,
-    Holding,
-    Observing,
-    Stopped,
-    Fallback,
-    NoPermit,
+use super::states::{Effect, Event, Machine, StillFaulty};
+pub use super::states::{State, Trip};
+
+/// What was read at a tick.
+#[derive(Debug, Clone, Copy)]
+pub struct Reading<'a> {
+    /// The objective's tags in the objective's name order; `None` when the read failed.
+    pub tags: Option<&'a [f64]>,
+    /// The permit: `None` when the loop has none, else whether it reads non-zero (a
+    /// permit that cannot be read withholds permission).
+    pub permit: Option<bool>,
 }
 
-impl State {
-    pub const ALL: [State; 6] =
-        [State::Seeking, State::Holding, State::Observing, State::Stopped, State::Fallback, State::NoPermit];
+/// Why the state changed.
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub enum Cause {
+    Tripped(Trip),
+    /// Automatically, after `recover_after_s` of healthy ticks.
+    Recovered,
+    PermitWithdrawn,
+    PermitGranted,
+    /// An operator asked for a mode (from fallback: the acknowledgement).
+    Asked(Mode),
+}
 
-    pub fn as_str(self) -> &'static str {
+impl Cause {
+    pub fn describe(self) -> String {
         match self {
-            State::Seeking => "seeking",
-            State::Holding => "holding",
-            State::Observing => "observing",
-            State::Stopped => "stopped",
-            State::Fallback => "fallback",
-            State::NoPermit => "no_permit",
+            Cause::Tripped(t) => format!("tripped: {}", t.as_str()),
+            Cause::Recovered => "recovered after a healthy interval".into(),
+            Cause::PermitWithdrawn => "the PLC withdrew permission".into(),
+            Cause::PermitGranted => "the PLC granted permission".into(),
+            Cause::Asked(m) => format!("{m} asked for"),
         }
     }
+}
+
+/// A change of state, for events and logs.
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub struct Transition {
+    pub from: State,
+    pub to: State,
+    pub cause: Cause,
 }
 
 /// What happened in one tick.
 #[derive(Debug, Clone, Copy, PartialEq)]
 pub struct TickReport {
-    /// Write every input's applied setpoint now.
+    /// Write every input's [`Control::applied`] value now.
     pub write: bool,
     /// The objective as evaluated from the tags; `None` when the read failed.
     pub objective: Option<f64>,
@@ -46,19 +64,35 @@ pub struct TickReport {
     pub guard: GuardActions,
 }
 
-/// One loop's mode, core and estimates.
+/// Why a mode change was refused: the fault that keeps the loop in fallback.
+#[derive(Debug, Clone, PartialEq)]
+pub struct Refused(pub String);
+
+/// One loop's watchdog, state, core and estimates.
 #[derive(Debug)]
 pub struct Control {
     objective: Expr,
     plausible: Option<Range>,
+    stale_after_s: f64,
+    on_trip: OnTrip,
     on_shutdown: OnShutdown,
     safe: Vec<f64>,
     seeker: Seeker,
-    mode: Mode,
+    machine: Machine,
     started: bool,
+    /// A (re)start from the setpoints in the PLC is due; nothing is written until then.
+    wants_read_back: bool,
     /// The filters start again at the next seeking step (after a pause or a fault).
     restart_filters: bool,
     objective_value: Option<f64>,
+    last_read_s: f64,
+    /// Since when setpoint writes have been failing.
+    failing_since_s: Option<f64>,
+    healthy_since_s: Option<f64>,
+    fault: Option<Trip>,
+    /// What is written this tick (or was last).
+    applied: Vec<f64>,
+    transitions: Vec<Transition>,
     ticks: u64,
 }
 
@@ -66,32 +100,54 @@ impl Control {
     /// A loop that has not started: it writes nothing until [`Control::start`].
     pub fn new(config: &LoopConfig) -> Self {
         let safe: Vec<f64> = config.inputs.iter().map(|i| i.safe).collect();
+        let w = &config.watchdog;
         Control {
             objective: config.objective.clone(),
-            plausible: config.watchdog.objective_range,
+            plausible: w.objective_range,
+            stale_after_s: w.stale_after_s,
+            on_trip: w.on_trip,
             on_shutdown: config.on_shutdown,
             seeker: Seeker::for_loop(config, &safe),
+            applied: vec![f64::NAN; safe.len()],
             safe,
-            mode: config.start_mode,
+            machine: Machine::new(config.start_mode, w.recover, w.recover_after_s.unwrap_or(f64::INFINITY)),
             started: false,
+            wants_read_back: false,
             restart_filters: true,
             objective_value: None,
+            last_read_s: 0.0,
+            failing_since_s: None,
+            healthy_since_s: None,
+            fault: None,
+            transitions: Vec::new(),
             ticks: 0,
         }
     }
 
-    /// Starts from the setpoints read back from the PLC: each one inside its bounds is
-    /// the estimate, any other (or one that could not be read) gives way to `safe`.
-    pub fn start(&mut self, read_back: &[Option<f64>]) {
-        self.reset_estimates(read_back);
+    /// Starts at `now_s` from these estimates (chosen with `seek::guard::starting_point`).
+    pub fn start(&mut self, now_s: f64, estimates: &[f64]) {
+        self.seeker.reset_estimates(estimates);
+        self.applied = self.seeker.inputs().iter().map(|i| i.applied).collect();
         self.started = true;
+        self.wants_read_back = false;
+        self.restart_filters = true;
+        self.last_read_s = now_s;
+        self.failing_since_s = None;
     }
 
     pub fn is_started(&self) -> bool {
         self.started
     }
 
-    fn reset_estimates(&mut self, read_back: &[Option<f64>]) {
+    /// Whether the loop waits for the setpoints in the PLC before writing again (after
+    /// permission returned, a recovery, or a mode that starts writing).
+    pub fn wants_read_back(&self) -> bool {
+        self.started && self.wants_read_back
+    }
+
+    /// Restarts bumpless from the setpoints read back from the PLC (each one inside its
+    /// bounds; any other gives way to `safe`), with the filters re-initialised.
+    pub fn restart_from(&mut self, read_back: &[Option<f64>]) {
         let estimates: Vec<f64> = self
             .seeker
             .inputs()
@@ -99,63 +155,198 @@ impl Control {
             .zip(&self.safe)
             .enumerate()
             .map(|(i, (input, &safe))| {
-                initial_estimate(read_back.get(i).copied().flatten(), input.guard.bounds, safe)
+                crate::seek::guard::initial_estimate(
+                    read_back.get(i).copied().flatten(),
+                    input.guard.bounds,
+                    safe,
+                )
             })
             .collect();
         self.seeker.reset_estimates(&estimates);
+        self.wants_read_back = false;
         self.restart_filters = true;
     }
 
-    /// One tick: `tags` are the values read, in the objective's name order, or `None`
-    /// when reading failed.
-    pub fn tick(&mut self, tick: u64, tags: Option<&[f64]>) -> TickReport {
-        let objective = tags.map(|values| self.objective.eval(values));
-        self.objective_value = objective;
+    /// The watchdog's verdict at `now_s`: the first fault that holds, if any.
+    fn fault_at(&self, now_s: f64, objective: Option<f64>) -> Option<Trip> {
+        if now_s - self.last_read_s >= self.stale_after_s {
+            return Some(Trip::Stale);
+        }
+        match objective.map(|j| check_objective(j, self.plausible)) {
+            Some(Err(ObjectiveFault::NotFinite)) => return Some(Trip::NotFinite),
+            Some(Err(ObjectiveFault::OutOfRange)) => return Some(Trip::OutOfRange),
+            _ => {}
+        }
+        match self.failing_since_s {
+            Some(since) if now_s - since >= self.stale_after_s => Some(Trip::WriteFailed),
+            _ => None,
+        }
+    }
+
+    fn handle(&mut self, event: Event, cause: Cause) -> Result<(), StillFaulty> {
+        let from = self.machine.state;
+        let effect = self.machine.on(event, self.fault)?;
+        match effect {
+            Effect::Recover | Effect::Restart => {
+                self.wants_read_back = true;
+                self.restart_filters = true;
+            }
+            Effect::Latch(_) | Effect::None => {}
+        }
+        if self.machine.state != from {
+            // A trip's cause is the fault itself, also when it was remembered from no_permit.
+            let cause = match (self.machine.state, self.machine.tripped) {
+                (State::Fallback, Some(trip)) if !matches!(cause, Cause::Asked(_)) => Cause::Tripped(trip),
+                _ => cause,
+            };
+            self.transitions.push(Transition { from, to: self.machine.state, cause });
+            if self.machine.state != State::Seeking {
+                self.restart_filters = true;
+            }
+        }
+        Ok(())
+    }
+
+    /// One tick at tick index `tick` and time `now_s` (seconds, any origin).
+    pub fn tick(&mut self, tick: u64, now_s: f64, reading: Reading<'_>) -> TickReport {
         self.ticks += 1;
+        let objective = reading.tags.map(|values| self.objective.eval(values));
+        self.objective_value = objective;
+        if reading.tags.is_some() {
+            self.last_read_s = now_s;
+        }
         let checked = match objective {
             Some(j) => check_objective(j, self.plausible).map_err(Some),
             None => Err(None),
         };
-        let fault = checked.err().flatten();
-        let quiet = TickReport { write: false, objective, fault, guard: GuardActions::default() };
+        let quiet = TickReport {
+            write: false,
+            objective,
+            fault: checked.err().flatten(),
+            guard: GuardActions::default(),
+        };
         if !self.started {
             return quiet;
         }
-        match (self.mode, checked) {
-            (Mode::Stopped, _) => quiet,
-            (Mode::Holding, _) => TickReport { write: true, guard: self.seeker.hold(), ..quiet },
-            (Mode::Seeking | Mode::Observing, Ok(j)) => {
+        self.fault = self.fault_at(now_s, objective);
+        if let Some(permitted) = reading.permit
+            && permitted != self.machine.permitted
+        {
+            let (event, cause) = if permitted {
+                (Event::PermitGranted, Cause::PermitGranted)
+            } else {
+                (Event::PermitWithdrawn, Cause::PermitWithdrawn)
+            };
+            // Permit events are never refused.
+            let _ = self.handle(event, cause);
+        }
+        match self.fault {
+            Some(trip) => {
+                self.healthy_since_s = None;
+                let _ = self.handle(Event::Fault(trip), Cause::Tripped(trip));
+            }
+            None => {
+                let since = *self.healthy_since_s.get_or_insert(now_s);
+                let _ = self.handle(Event::Healthy { healthy_s: now_s - since }, Cause::Recovered);
+            }
+        }
+        let state = self.machine.state;
+        let waiting = self.wants_read_back && state.writes();
+        let report = match (state, checked) {
+            (State::Stopped | State::NoPermit, _) => quiet,
+            (_, _) if waiting => quiet,
+            (State::Fallback, _) => {
+                let guard = self.fallback();
+                TickReport { write: true, guard, ..quiet }
+            }
+            (State::Holding, _) => TickReport { write: true, guard: self.seeker.hold(), ..quiet },
+            (State::Seeking | State::Observing, Ok(j)) => {
                 if std::mem::take(&mut self.restart_filters) {
                     self.seeker.restart();
                 }
                 let guard = self.seeker.step(tick, j);
-                TickReport { write: self.mode == Mode::Seeking, guard, ..quiet }
+                TickReport { write: state == State::Seeking, guard, ..quiet }
             }
             // Nothing trustworthy to seek on: hold the estimate without dither, and start
             // the filters again once readings are good.
-            (Mode::Seeking | Mode::Observing, Err(_)) => {
+            (State::Seeking | State::Observing, Err(_)) => {
                 self.restart_filters = true;
-                TickReport { write: self.mode == Mode::Seeking, guard: self.seeker.hold(), ..quiet }
+                TickReport { write: state == State::Seeking, guard: self.seeker.hold(), ..quiet }
             }
+        };
+        if report.write && state != State::Fallback {
+            self.applied = self.seeker.inputs().iter().map(|i| i.applied).collect();
         }
+        report
     }
 
-    /// Switches mode at the next tick. A loop that starts writing again after observing
-    /// or being stopped restarts from the setpoints read back from the PLC (bumpless).
-    pub fn set_mode(&mut self, mode: Mode, read_back: &[Option<f64>]) {
-        let was_writing = matches!(self.mode, Mode::Seeking | Mode::Holding);
-        let will_write = matches!(mode, Mode::Seeking | Mode::Holding);
-        if will_write && !was_writing {
-            self.reset_estimates(read_back);
-        }
-        if mode != self.mode {
+    /// The fallback setpoints: `safe`, or the estimate held, each inside the bounds.
+    fn fallback(&mut self) -> GuardActions {
+        let guard = match self.on_trip {
+            OnTrip::Hold => self.seeker.hold(),
+            OnTrip::Safe => GuardActions::default(),
+        };
+        self.applied = self.fallback_values();
+        guard
+    }
+
+    fn fallback_values(&self) -> Vec<f64> {
+        self.seeker
+            .inputs()
+            .iter()
+            .zip(&self.safe)
+            .map(|(input, &safe)| match self.on_trip {
+                OnTrip::Safe => input.guard.clamp(safe),
+                OnTrip::Hold => input.guard.clamp(input.estimate),
+            })
+            .collect()
+    }
+
+    /// Whether `safe` lies outside an input's current bounds (fallback then writes the
+    /// nearest bound).
+    pub fn safe_outside_bounds(&self) -> Vec<bool> {
+        self.seeker.inputs().iter().zip(&self.safe).map(|(i, &s)| !i.guard.bounds.contains(s)).collect()
+    }
+
+    /// Tells the watchdog how this tick's writes went.
+    pub fn note_writes(&mut self, all_ok: bool, now_s: f64) {
+        if all_ok {
+            self.failing_since_s = None;
+        } else {
+            self.failing_since_s.get_or_insert(now_s);
+            // The plant did not get this tick's dithered setpoint.
             self.restart_filters = true;
         }
-        self.mode = mode;
     }
 
-    /// Starts the filters again at the next seeking tick, after a gap in the ticks or a
-    /// setpoint that did not reach the plant.
+    /// An operator asks for `mode`. From fallback this is the acknowledgement, refused
+    /// while the fault that tripped the loop (or any other) still holds.
+    pub fn ask(&mut self, mode: Mode) -> Result<(), Refused> {
+        self.handle(Event::Ask(mode), Cause::Asked(mode))
+            .map_err(|StillFaulty(trip)| Refused(self.describe(trip)))
+    }
+
+    /// A sentence naming a fault that holds.
+    fn describe(&self, trip: Trip) -> String {
+        match trip {
+            Trip::Stale => {
+                format!("the objective's tags have not been read for {} s or more", self.stale_after_s)
+            }
+            Trip::NotFinite => "the objective is not a finite number".into(),
+            Trip::OutOfRange => match (self.objective_value, self.plausible) {
+                (Some(j), Some(r)) => format!("the objective {j} is outside its plausible range {r}"),
+                _ => "the objective is outside its plausible range".into(),
+            },
+            Trip::WriteFailed => format!("setpoint writes have failed for {} s or more", self.stale_after_s),
+        }
+    }
+
+    /// The state changes since last asked, oldest first.
+    pub fn take_transitions(&mut self) -> Vec<Transition> {
+        std::mem::take(&mut self.transitions)
+    }
+
+    /// Starts the filters again at the next seeking tick, after a gap in the ticks.
     pub fn restart_filters(&mut self) {
         self.restart_filters = true;
     }
@@ -166,20 +357,29 @@ impl Control {
     }
 
     pub fn mode(&self) -> Mode {
-        self.mode
+        self.machine.mode
     }
 
     pub fn state(&self) -> State {
-        match self.mode {
-            Mode::Seeking => State::Seeking,
-            Mode::Holding => State::Holding,
-            Mode::Observing => State::Observing,
-            Mode::Stopped => State::Stopped,
-        }
+        self.machine.state
+    }
+
+    /// The remembered trip, while there is one.
+    pub fn tripped(&self) -> Option<Trip> {
+        self.machine.tripped
+    }
+
+    pub fn permitted(&self) -> bool {
+        self.machine.permitted
     }
 
     pub fn inputs(&self) -> &[InputState] {
         self.seeker.inputs()
+    }
+
+    /// What each input is written (or was last).
+    pub fn applied(&self) -> &[f64] {
+        &self.applied
     }
 
     pub fn objective(&self) -> Option<f64> {
@@ -194,11 +394,15 @@ impl Control {
         self.ticks
     }
 
-    /// What to write when the service stops: the estimates without dither, or `safe`
-    /// (each kept inside its bounds); `None` for a loop that is not writing.
+    /// What to write when the service stops: in fallback the fallback values; else the
+    /// estimates without dither or `safe` (each inside its bounds); `None` for a loop that
+    /// is not writing.
     pub fn shutdown_values(&self) -> Option<Vec<f64>> {
-        if !self.started || !matches!(self.mode, Mode::Seeking | Mode::Holding) {
+        if !self.started || !self.machine.state.writes() {
             return None;
+        }
+        if self.machine.state == State::Fallback {
+            return Some(self.fallback_values());
         }
         Some(
             self.seeker
@@ -218,91 +422,157 @@ impl Control {
 mod tests {
     use super::*;
 
-    fn config(mode: &str) -> LoopConfig {
+    fn config(mode: &str, watchdog: &str) -> LoopConfig {
         let text = format!(
             "[links.plc]\nmodbus_tcp = \"127.0.0.1:5020\"\n[tags.y]\nlink = \"plc\"\ninput_register = 0\ntype = \"f32\"\n\
              [[loops]]\nname = \"l\"\nobjective = \"y\"\ndirection = \"maximize\"\ntick_s = 1.0\nstart_mode = \"{mode}\"\n\
              on_shutdown = \"safe\"\n[loops.filter]\nhighpass_hz = 0.01\n[loops.watchdog]\nstale_after_s = 5\n\
-             objective_range = [0, 100]\n[[loops.inputs]]\nname = \"u\"\n\
+             objective_range = [0, 100]\n{watchdog}\n[[loops.inputs]]\nname = \"u\"\n\
              write = {{ link = \"plc\", holding_register = 0, type = \"f32\" }}\nlimits = [0, 6]\nbounds = [1, 5]\n\
              safe = 2\nmax_rate_per_s = 1\ndither_amplitude = 0.1\ndither_period_s = 20\ngain = 0.01\n"
         );
         crate::config::parse(&text, "test").expect("valid").loops.remove(0)
     }
 
+    fn good(values: &[f64]) -> Reading<'_> {
+        Reading { tags: Some(values), permit: None }
+    }
+
     #[test]
     fn a_loop_writes_nothing_before_it_has_a_starting_point() {
-        let mut c = Control::new(&config("seeking"));
-        assert!(!c.tick(0, Some(&[10.0])).write);
-        c.start(&[Some(3.0)]);
-        assert!(c.tick(1, Some(&[10.0])).write);
+        let mut c = Control::new(&config("seeking", ""));
+        assert!(!c.tick(0, 0.0, good(&[10.0])).write);
+        c.start(0.0, &[3.0]);
+        assert!(c.tick(1, 1.0, good(&[10.0])).write);
         assert_eq!(c.inputs()[0].estimate, 3.0);
     }
 
     #[test]
-    fn start_falls_back_to_safe_when_the_read_back_is_outside_the_bounds_or_missing() {
-        let mut c = Control::new(&config("seeking"));
-        c.start(&[Some(5.5)]);
-        assert_eq!(c.inputs()[0].estimate, 2.0);
-        c.start(&[None]);
-        assert_eq!(c.inputs()[0].estimate, 2.0);
-    }
-
-    #[test]
     fn observing_computes_but_never_writes_and_stopped_does_neither() {
-        let mut c = Control::new(&config("observing"));
-        c.start(&[Some(3.0)]);
+        let mut c = Control::new(&config("observing", ""));
+        c.start(0.0, &[3.0]);
         for n in 0..50 {
-            assert!(!c.tick(n, Some(&[10.0 + n as f64 * 0.1])).write);
+            assert!(!c.tick(n, n as f64, good(&[10.0 + n as f64 * 0.1])).write);
         }
         assert_ne!(c.inputs()[0].applied, 3.0, "the dither is computed");
-        c.set_mode(Mode::Stopped, &[]);
+        c.ask(Mode::Stopped).unwrap();
         let before = c.inputs()[0];
-        assert!(!c.tick(50, Some(&[1.0])).write);
+        assert!(!c.tick(50, 50.0, good(&[1.0])).write);
         assert_eq!(c.inputs()[0], before);
     }
 
     #[test]
-    fn holding_writes_the_estimate_without_dither() {
-        let mut c = Control::new(&config("holding"));
-        c.start(&[Some(3.0)]);
-        for n in 0..30 {
-            let r = c.tick(n, Some(&[10.0]));
+    fn a_stale_objective_trips_to_safe_after_stale_after_s() {
+        let mut c = Control::new(&config("seeking", ""));
+        c.start(0.0, &[3.0]);
+        c.tick(0, 0.0, good(&[10.0]));
+        for n in 1..5 {
+            let r = c.tick(n, n as f64, Reading { tags: None, permit: None });
+            assert_eq!(c.state(), State::Seeking, "tick {n}");
             assert!(r.write);
-            assert_eq!(c.inputs()[0].applied, 3.0);
         }
-    }
-
-    #[test]
-    fn leaving_observing_restarts_from_the_read_back_setpoint() {
-        let mut c = Control::new(&config("observing"));
-        c.start(&[Some(3.0)]);
-        for n in 0..20 {
-            c.tick(n, Some(&[10.0 + n as f64]));
-        }
-        c.set_mode(Mode::Seeking, &[Some(4.2)]);
-        assert_eq!(c.inputs()[0].estimate, 4.2);
-    }
-
-    #[test]
-    fn an_implausible_objective_holds_the_estimate_and_never_reaches_the_core() {
-        let mut c = Control::new(&config("seeking"));
-        c.start(&[Some(3.0)]);
-        let r = c.tick(0, Some(&[500.0]));
-        assert_eq!(r.fault, Some(ObjectiveFault::OutOfRange));
+        let r = c.tick(5, 5.0, Reading { tags: None, permit: None });
+        assert_eq!(c.state(), State::Fallback);
+        assert_eq!(c.tripped(), Some(Trip::Stale));
         assert!(r.write);
-        assert_eq!(c.inputs()[0].applied, 3.0);
-        let r = c.tick(1, Some(&[f64::NAN]));
-        assert_eq!(r.fault, Some(ObjectiveFault::NotFinite));
-        assert!(c.inputs()[0].applied.is_finite());
+        assert_eq!(c.applied(), &[2.0], "safe, at once");
+        let t = c.take_transitions();
+        assert_eq!(
+            t,
+            vec![Transition {
+                from: State::Seeking,
+                to: State::Fallback,
+                cause: Cause::Tripped(Trip::Stale)
+            }]
+        );
+    }
+
+    #[test]
+    fn an_implausible_or_non_finite_objective_trips_at_once() {
+        let mut c = Control::new(&config("seeking", ""));
+        c.start(0.0, &[3.0]);
+        c.tick(0, 0.0, good(&[500.0]));
+        assert_eq!(c.tripped(), Some(Trip::OutOfRange));
+        let mut c = Control::new(&config("seeking", ""));
+        c.start(0.0, &[3.0]);
+        c.tick(0, 0.0, good(&[f64::NAN]));
+        assert_eq!(c.tripped(), Some(Trip::NotFinite));
+        assert!(c.applied().iter().all(|v| v.is_finite()));
+    }
+
+    #[test]
+    fn manual_recovery_is_refused_while_the_fault_holds_and_restarts_bumpless_after() {
+        let mut c = Control::new(&config("seeking", ""));
+        c.start(0.0, &[3.0]);
+        c.tick(0, 0.0, good(&[500.0]));
+        let refused = c.ask(Mode::Seeking).unwrap_err();
+        assert!(refused.0.contains("outside its plausible range"), "{refused:?}");
+        c.tick(1, 1.0, good(&[50.0]));
+        assert_eq!(c.state(), State::Fallback, "manual: healthy readings alone do not recover");
+        c.ask(Mode::Seeking).unwrap();
+        assert_eq!(c.state(), State::Seeking);
+        assert!(c.wants_read_back());
+        assert!(!c.tick(2, 2.0, good(&[50.0])).write, "nothing is written before the read-back");
+        c.restart_from(&[Some(2.0)]);
+        assert!(c.tick(3, 3.0, good(&[50.0])).write);
+        assert!((c.inputs()[0].estimate - 2.0).abs() < 1e-9, "restarted from what the PLC holds");
+    }
+
+    #[test]
+    fn automatic_recovery_returns_after_the_healthy_interval() {
+        let mut c = Control::new(&config("holding", "recover = \"auto\"\nrecover_after_s = 10"));
+        c.start(0.0, &[3.0]);
+        c.tick(0, 0.0, good(&[500.0]));
+        assert_eq!(c.state(), State::Fallback);
+        for n in 1..11 {
+            c.tick(n, n as f64, good(&[50.0]));
+            assert_eq!(c.state(), State::Fallback, "tick {n}");
+        }
+        c.tick(11, 11.0, good(&[50.0]));
+        assert_eq!(c.state(), State::Holding);
+    }
+
+    #[test]
+    fn without_permission_nothing_is_written_and_its_return_restarts_from_the_plc() {
+        let mut c = Control::new(&config("seeking", ""));
+        c.start(0.0, &[3.0]);
+        for n in 0..5 {
+            let r = c.tick(n, n as f64, Reading { tags: Some(&[10.0]), permit: Some(false) });
+            assert!(!r.write);
+            assert_eq!(c.state(), State::NoPermit);
+        }
+        c.tick(5, 5.0, Reading { tags: Some(&[10.0]), permit: Some(true) });
+        assert_eq!(c.state(), State::Seeking);
+        assert!(c.wants_read_back());
+    }
+
+    #[test]
+    fn failed_writes_trip_after_stale_after_s() {
+        let mut c = Control::new(&config("seeking", ""));
+        c.start(0.0, &[3.0]);
+        for n in 0..6 {
+            c.tick(n, n as f64, good(&[10.0]));
+            c.note_writes(false, n as f64);
+        }
+        assert_eq!(c.tripped(), Some(Trip::WriteFailed));
+    }
+
+    #[test]
+    fn fallback_writes_the_nearest_bound_when_the_bounds_exclude_safe() {
+        let mut c = Control::new(&config("seeking", ""));
+        c.start(0.0, &[3.0]);
+        c.set_bounds(0, Range { min: 2.5, max: 5.0 });
+        c.tick(0, 0.0, good(&[f64::NAN]));
+        assert_eq!(c.applied(), &[2.5]);
+        assert_eq!(c.safe_outside_bounds(), vec![true]);
     }
 
     #[test]
     fn shutdown_writes_safe_or_the_estimate_only_for_a_writing_loop() {
-        let mut c = Control::new(&config("seeking"));
-        c.start(&[Some(3.0)]);
+        let mut c = Control::new(&config("seeking", ""));
+        c.start(0.0, &[3.0]);
         assert_eq!(c.shutdown_values(), Some(vec![2.0]));
-        c.set_mode(Mode::Observing, &[]);
+        c.ask(Mode::Observing).unwrap();
         assert_eq!(c.shutdown_values(), None);
     }
 }

@@ -8,12 +8,13 @@ use tokio::sync::{mpsc, oneshot, watch};
 use tokio::time::{Instant, MissedTickBehavior};
 use tokio_util::sync::CancellationToken;
 
-use super::control::{Control, TickReport};
+use super::control::{Cause, Control, Reading, State, TickReport};
 use super::status::{InputStatus, LoopStatus};
-use crate::config::{Config, LoopConfig, Mode, Range};
+use crate::config::{Config, LoopConfig, Mode, OnTrip, Range};
 use crate::field::{LinkError, Links, LoopIo, Urgency};
-use crate::history::{InputSample, SampleRecord, now_ms, rfc3339};
+use crate::history::{History, InputSample, SampleRecord, now_ms, rfc3339};
 pub use crate::report::Reporting;
+use crate::seek::guard::starting_point;
 
 /// Why a running loop refused a command.
 #[derive(Debug, Clone, PartialEq, thiserror::Error)]
@@ -82,14 +83,20 @@ pub struct LoopTask {
     input_names: Vec<Arc<str>>,
     control: Control,
     io: LoopIo,
+    /// The objective's tags, then the permit tag when there is one.
     values: Vec<f64>,
+    has_permit: bool,
     status: watch::Sender<LoopStatus>,
     commands: mpsc::Receiver<Command>,
     reporting: Reporting,
-    /// Unix milliseconds of the last successful read of the objective's tags.
+    /// Where the last estimates are kept, to resume from after a restart.
+    resume: Option<History>,
+    /// The origin of the loop's own clock, for the watchdog.
+    started_at: Instant,
     objective_at: Option<i64>,
     last_tick: Option<u64>,
     skipped_ticks: u64,
+    heartbeat: u16,
     /// Whether the last write of each input failed, so each failure is logged once.
     write_failing: Vec<bool>,
     read_failing: bool,
@@ -97,14 +104,24 @@ pub struct LoopTask {
 
 impl LoopTask {
     /// The task for loop `index` of a validated config, and the API's handle on it.
-    pub fn new(config: &Config, index: usize, links: &Links, reporting: Reporting) -> (Self, LoopHandle) {
+    /// `resume` is the history to take the last stored estimates from at start.
+    pub fn new(
+        config: &Config,
+        index: usize,
+        links: &Links,
+        reporting: Reporting,
+        resume: Option<History>,
+    ) -> (Self, LoopHandle) {
         let loop_config = Arc::new(config.loops[index].clone());
         let control = Control::new(&loop_config);
-        let io = LoopIo::new(config, links, index, control.objective_names());
+        let mut tags: Vec<String> = control.objective_names().to_vec();
+        tags.extend(loop_config.permit.iter().cloned());
+        let io = LoopIo::new(config, links, index, &tags);
         let (status, receiver) = watch::channel(LoopStatus::initial(&loop_config));
         let (commands_in, commands) = mpsc::channel(16);
         let task = LoopTask {
-            values: vec![f64::NAN; control.objective_names().len()],
+            values: vec![f64::NAN; tags.len()],
+            has_permit: loop_config.permit.is_some(),
             write_failing: vec![false; loop_config.inputs.len()],
             name: Arc::from(loop_config.name.as_str()),
             input_names: loop_config.inputs.iter().map(|i| Arc::from(i.name.as_str())).collect(),
@@ -114,9 +131,12 @@ impl LoopTask {
             status,
             commands,
             reporting,
+            resume,
+            started_at: Instant::now(),
             objective_at: None,
             last_tick: None,
             skipped_ticks: 0,
+            heartbeat: 0,
             read_failing: false,
         };
         (task, LoopHandle { config: loop_config, status: receiver, commands: commands_in })
@@ -135,8 +155,12 @@ impl LoopTask {
         self.skipped_ticks
     }
 
+    fn now_s(&self) -> f64 {
+        self.started_at.elapsed().as_secs_f64()
+    }
+
     /// One tick at tick index `n`: start if not started, read the tags, let the control
-    /// decide, write the setpoints, publish and record.
+    /// decide, write the setpoints and the heartbeat, publish and record.
     pub async fn tick(&mut self, n: u64) -> TickReport {
         if let Some(last) = self.last_tick
             && n > last + 1
@@ -150,22 +174,35 @@ impl LoopTask {
         self.last_tick = Some(n);
         if !self.control.is_started() {
             self.try_start().await;
+        } else if self.control.wants_read_back() {
+            self.restart_from_plc().await;
         }
         let read = self.io.read(&mut self.values).await;
         self.note_read(&read);
-        let report = self.control.tick(n, read.is_ok().then_some(self.values.as_slice()));
         if read.is_ok() {
             self.objective_at = Some(now_ms());
         }
+        let objective_tags = self.control.objective_names().len();
+        let permit = self.has_permit.then(|| read.is_ok() && self.values[objective_tags] != 0.0);
+        let tags = read.is_ok().then(|| &self.values[..objective_tags]);
+        let now_s = self.now_s();
+        let report = self.control.tick(n, now_s, Reading { tags, permit });
         if report.write {
-            self.write_applied().await;
+            let all_ok = self.write_applied().await;
+            self.control.note_writes(all_ok, now_s);
         }
+        if self.config.heartbeat.is_some() {
+            // A failed heartbeat is a link error (counted and logged by the link), not a trip.
+            let _ = self.io.write_heartbeat(self.heartbeat).await;
+            self.heartbeat = self.heartbeat.wrapping_add(1);
+        }
+        self.report_transitions("system");
         self.publish();
         self.record(&report);
         report
     }
 
-    /// Reads every input's setpoint back from the PLC; `None` when any cannot be read.
+    /// Reads every input's setpoint back from the PLC.
     async fn read_back(&self) -> Result<Vec<Option<f64>>, LinkError> {
         let mut values = Vec::with_capacity(self.config.inputs.len());
         for i in 0..self.config.inputs.len() {
@@ -174,7 +211,9 @@ impl LoopTask {
         Ok(values)
     }
 
-    /// Starts from the setpoints in the PLC; waits for a later tick when they cannot be
+    /// Starts from the last stored estimate when it is recent (younger than ten dither
+    /// periods) and inside the bounds, else from the setpoint read back from the PLC when
+    /// inside the bounds, else from `safe`. Waits for a later tick when the PLC cannot be
     /// read, rather than writing anything without knowing where the process stands.
     async fn try_start(&mut self) {
         let read_back = match self.read_back().await {
@@ -184,24 +223,107 @@ impl LoopTask {
                 return;
             }
         };
-        self.control.start(&read_back);
-        let by_input = |values: &mut dyn Iterator<Item = f64>| -> serde_json::Map<String, serde_json::Value> {
-            self.config
-                .inputs
-                .iter()
-                .zip(values)
-                .map(|(c, v)| (c.name.clone(), serde_json::json!(v)))
-                .collect()
+        let stored = match &self.resume {
+            Some(history) => match history.last_estimates(&self.name).await {
+                Ok(rows) => rows,
+                Err(e) => {
+                    tracing::warn!(r#loop = %self.name, error = %e, "cannot read the stored estimates; not resuming from them");
+                    Vec::new()
+                }
+            },
+            None => Vec::new(),
         };
-        let estimates = by_input(&mut self.control.inputs().iter().map(|i| i.estimate));
-        let read = by_input(&mut read_back.iter().map(|v| v.unwrap_or(f64::NAN)));
-        tracing::info!(r#loop = %self.name, mode = %self.control.mode(), estimates = %serde_json::Value::Object(estimates.clone()), "loop started");
+        let now = now_ms();
+        let mut estimates = Vec::new();
+        let mut detail = serde_json::Map::new();
+        for ((cfg, input), back) in self.config.inputs.iter().zip(self.control.inputs()).zip(&read_back) {
+            let stored = stored.iter().find(|s| s.input == cfg.name);
+            let age_s = stored.map(|s| (now - s.at_ms) as f64 / 1000.0);
+            let recent =
+                stored.filter(|_| age_s.is_some_and(|a| a < 10.0 * cfg.dither_period_s)).map(|s| s.estimate);
+            let (estimate, origin) = starting_point(recent, *back, input.guard.bounds, cfg.safe);
+            estimates.push(estimate);
+            detail.insert(
+                cfg.name.clone(),
+                serde_json::json!({
+                    "estimate": estimate,
+                    "from": origin.as_str(),
+                    "stored": stored.map(|s| s.estimate),
+                    "stored_age_s": age_s,
+                    "read_back": back,
+                }),
+            );
+        }
+        self.control.start(self.now_s(), &estimates);
+        let detail = serde_json::Value::Object(detail);
+        tracing::info!(r#loop = %self.name, mode = %self.control.mode(), start = %detail, "loop started");
         self.reporting.event(
             Some(&self.name),
             "loop_started",
-            serde_json::json!({"mode": self.control.mode().as_str(), "estimates": estimates, "read_back": read}),
+            serde_json::json!({"mode": self.control.mode().as_str(), "inputs": detail}),
             "system",
         );
+    }
+
+    /// A bumpless restart from what the PLC holds (after permission returned, a
+    /// recovery, or a mode that starts writing); retried every tick until it succeeds.
+    async fn restart_from_plc(&mut self) {
+        match self.read_back().await {
+            Ok(read_back) => {
+                self.control.restart_from(&read_back);
+                tracing::info!(r#loop = %self.name, read_back = ?read_back, "restarted from the setpoints in the PLC");
+            }
+            Err(e) => {
+                tracing::debug!(r#loop = %self.name, error = %e, "setpoints not readable yet; restart waits")
+            }
+        }
+    }
+
+    /// Logs, counts and records every state change since the last call.
+    fn report_transitions(&mut self, actor: &str) {
+        for t in self.control.take_transitions() {
+            let mut detail = serde_json::json!({"from": t.from.as_str(), "to": t.to.as_str(), "reason": t.cause.describe()});
+            let kind = match t.cause {
+                Cause::Tripped(trip) => {
+                    if let Some(m) = &self.reporting.metrics {
+                        m.fallbacks.with_label_values(&[&*self.name, trip.as_str()]).inc();
+                    }
+                    detail["trip"] = serde_json::json!(trip.as_str());
+                    detail["on_trip"] = serde_json::json!(self.config.watchdog.on_trip.as_str());
+                    let outside = self.control.safe_outside_bounds();
+                    let writes: serde_json::Map<_, _> = self
+                        .config
+                        .inputs
+                        .iter()
+                        .zip(self.control.applied())
+                        .zip(&outside)
+                        .map(|((c, v), out)| {
+                            let note = if *out && self.config.watchdog.on_trip == OnTrip::Safe {
+                                "safe lies outside the bounds: the nearest bound is written"
+                            } else {
+                                ""
+                            };
+                            (c.name.clone(), serde_json::json!({"value": v, "note": note}))
+                        })
+                        .collect();
+                    detail["writes"] = serde_json::Value::Object(writes);
+                    tracing::warn!(r#loop = %self.name, trip = trip.as_str(), detail = %detail, "loop tripped to fallback");
+                    "tripped"
+                }
+                Cause::Recovered => "recovered",
+                Cause::Asked(_) if t.from == State::Fallback => "recovered",
+                Cause::PermitWithdrawn => "permit_withdrawn",
+                Cause::PermitGranted => "permit_granted",
+                // The mode_changed event of the request says it all.
+                Cause::Asked(_) => "",
+            };
+            if !matches!(t.cause, Cause::Tripped(_)) {
+                tracing::info!(r#loop = %self.name, from = t.from.as_str(), to = t.to.as_str(), reason = %t.cause.describe(), "state changed");
+            }
+            if !kind.is_empty() {
+                self.reporting.event(Some(&self.name), kind, detail, actor);
+            }
+        }
     }
 
     fn note_read(&mut self, read: &Result<(), LinkError>) {
@@ -223,14 +345,14 @@ impl LoopTask {
         }
     }
 
-    async fn write_applied(&mut self) {
+    /// Writes every input's applied value; whether all writes went through.
+    async fn write_applied(&mut self) -> bool {
+        let mut all_ok = true;
         for i in 0..self.config.inputs.len() {
-            let value = self.control.inputs()[i].applied;
-            if self.write_input(i, value, Urgency::Normal).await.is_err() {
-                // The plant did not get this tick's dithered setpoint.
-                self.control.restart_filters();
-            }
+            let value = self.control.applied()[i];
+            all_ok &= self.write_input(i, value, Urgency::Normal).await.is_ok();
         }
+        all_ok
     }
 
     /// Writes the estimates without dither (when a loop stops writing, so no dither is
@@ -267,31 +389,17 @@ impl LoopTask {
         match command {
             Command::SetMode { mode, actor, reply } => {
                 let from = self.control.mode();
-                let starts_writing = matches!(mode, Mode::Seeking | Mode::Holding)
-                    && !matches!(from, Mode::Seeking | Mode::Holding)
-                    && self.control.is_started();
-                // A loop that starts writing restarts from what the PLC holds now.
-                let read_back = if starts_writing {
-                    match self.read_back().await {
-                        Ok(v) => v,
-                        Err(e) => {
-                            let why = format!(
-                                "cannot switch to {mode}: the setpoints cannot be read back from the PLC ({e})"
-                            );
-                            let _ = reply.send(Err(CommandError::Conflict(why)));
-                            return;
-                        }
-                    }
-                } else {
-                    Vec::new()
-                };
-                let stops_writing = matches!(from, Mode::Seeking | Mode::Holding)
-                    && !matches!(mode, Mode::Seeking | Mode::Holding)
-                    && self.control.is_started();
-                if stops_writing {
+                let was_writing = self.control.state().writes();
+                if let Err(refused) = self.control.ask(mode) {
+                    let _ = reply.send(Err(CommandError::Conflict(format!(
+                        "loop {} stays in fallback: {}",
+                        self.name, refused.0
+                    ))));
+                    return;
+                }
+                if was_writing && !self.control.state().writes() && self.control.is_started() {
                     self.write_estimates().await;
                 }
-                self.control.set_mode(mode, &read_back);
                 if from != mode {
                     tracing::info!(r#loop = %self.name, from = %from, to = %mode, actor = %actor, "mode changed");
                     self.reporting.event(
@@ -301,6 +409,7 @@ impl LoopTask {
                         &actor,
                     );
                 }
+                self.report_transitions(&actor);
                 self.publish();
                 let _ = reply.send(Ok(self.status.borrow().clone()));
             }
@@ -331,9 +440,9 @@ impl LoopTask {
         }
     }
 
-    /// Writes the `on_shutdown` values of a loop that is writing; called once on stop.
-    /// The link's backoff is ignored and each write is tried a few times, and the event
-    /// says for each input whether the value reached the PLC.
+    /// Writes the `on_shutdown` values of a loop that is writing (the fallback values in
+    /// fallback); called once on stop. The link's backoff is ignored and each write is
+    /// tried a few times, and the event says for each input whether it reached the PLC.
     pub async fn shutdown(&mut self) {
         const ATTEMPTS: usize = 3;
         let written = match self.control.shutdown_values() {
@@ -378,9 +487,10 @@ impl LoopTask {
             .inputs
             .iter()
             .zip(c.inputs())
-            .map(|(cfg, i)| InputStatus {
+            .zip(c.applied())
+            .map(|((cfg, i), &applied)| InputStatus {
                 name: cfg.name.clone(),
-                applied: known(i.applied),
+                applied: known(applied),
                 estimate: known(i.estimate),
                 gradient: known(i.gradient),
                 bounds: i.guard.bounds.into(),
@@ -392,10 +502,10 @@ impl LoopTask {
             name: self.config.name.clone(),
             mode: c.mode().as_str(),
             state: c.state().as_str(),
-            fallback_reason: None,
+            fallback_reason: c.tripped().map(|t| t.as_str().to_owned()),
             direction: self.config.direction.as_str(),
             method: self.config.method.as_str(),
-            permitted: true,
+            permitted: c.permitted(),
             objective: c.objective(),
             objective_at: self.objective_at.map(rfc3339),
             ticks: c.ticks(),
@@ -407,13 +517,14 @@ impl LoopTask {
     /// Metrics and a history sample for the tick just done.
     fn record(&self, report: &TickReport) {
         let c = &self.control;
+        let started = c.is_started();
         if let Some(m) = &self.reporting.metrics {
             if let Some(j) = report.objective {
                 m.objective.with_label_values(&[&*self.name]).set(j);
             }
-            if c.is_started() {
-                for (name, i) in self.input_names.iter().zip(c.inputs()) {
-                    m.setpoint.with_label_values(&[&*self.name, name]).set(i.applied);
+            if started {
+                for ((name, i), &applied) in self.input_names.iter().zip(c.inputs()).zip(c.applied()) {
+                    m.setpoint.with_label_values(&[&*self.name, name]).set(applied);
                     m.estimate.with_label_values(&[&*self.name, name]).set(i.estimate);
                     m.gradient.with_label_values(&[&*self.name, name]).set(i.gradient);
                 }
@@ -421,7 +532,6 @@ impl LoopTask {
             m.set_state(&self.name, c.state());
         }
         if let Some(h) = &self.reporting.history {
-            let started = c.is_started();
             let known = |v: f64| if started { v } else { f64::NAN };
             h.sample(SampleRecord {
                 loop_name: self.name.clone(),
@@ -432,14 +542,16 @@ impl LoopTask {
                     .input_names
                     .iter()
                     .zip(c.inputs())
-                    .map(|(name, i)| InputSample {
+                    .zip(c.applied())
+                    .map(|((name, i), &applied)| InputSample {
                         name: name.clone(),
-                        applied: known(i.applied),
+                        applied: known(applied),
                         estimate: known(i.estimate),
                         gradient: known(i.gradient),
                     })
                     .collect(),
-                resumable: report.write,
+                // Only an estimate that was in force is one to resume from.
+                resumable: report.write && c.state() != State::Fallback,
             });
         }
     }
