@@ -374,3 +374,79 @@ pub fn python_peer(script: &str) -> Command {
     command.arg(path);
     command
 }
+
+/// Writes holding registers with a hand-built Modbus/TCP request (function 0x10), as an
+/// HMI or the test itself would; whether the server acknowledged it.
+/// Source: Modbus Application Protocol Specification V1.1b3 §6.12.
+pub fn write_holding_registers(port: u16, address: u16, words: &[u16]) -> bool {
+    use std::io::{Read, Write};
+    let Ok(mut stream) = std::net::TcpStream::connect(("127.0.0.1", port)) else { return false };
+    let _ = stream.set_read_timeout(Some(std::time::Duration::from_secs(2)));
+    let count = words.len() as u16;
+    let length = 7 + 2 * count;
+    let mut request = vec![0, 1, 0, 0];
+    request.extend_from_slice(&length.to_be_bytes());
+    request.extend_from_slice(&[1, 0x10]);
+    request.extend_from_slice(&address.to_be_bytes());
+    request.extend_from_slice(&count.to_be_bytes());
+    request.push((2 * count) as u8);
+    for w in words {
+        request.extend_from_slice(&w.to_be_bytes());
+    }
+    if stream.write_all(&request).is_err() {
+        return false;
+    }
+    let mut answer = [0u8; 12];
+    stream.read_exact(&mut answer).is_ok() && answer[7] == 0x10
+}
+
+/// The two registers of an f32, high word first.
+pub fn f32_words(value: f64) -> [u16; 2] {
+    let bits = (value as f32).to_bits();
+    [(bits >> 16) as u16, bits as u16]
+}
+
+/// How a misbehaving PLC answers.
+#[derive(Debug, Clone, Copy)]
+pub enum BadPlc {
+    /// Every request gets exception 0x06 (server device busy).
+    Busy,
+    /// Every request is answered (with exception 0x06) only after this long.
+    Late(std::time::Duration),
+}
+
+/// A Modbus/TCP server on a loopback port (`port`, or any when `None`) that misbehaves
+/// in the given way; runs until the test ends. Returns its port.
+pub fn bad_plc(behaviour: BadPlc, port: Option<u16>) -> u16 {
+    use std::io::{Read, Write};
+    let listener = std::net::TcpListener::bind(("127.0.0.1", port.unwrap_or(0))).expect("a loopback port");
+    let port = listener.local_addr().expect("bound").port();
+    std::thread::spawn(move || {
+        for stream in listener.incoming() {
+            let Ok(mut stream) = stream else { continue };
+            std::thread::spawn(move || {
+                loop {
+                    let mut header = [0u8; 7];
+                    if stream.read_exact(&mut header).is_err() {
+                        return;
+                    }
+                    let length = usize::from(u16::from_be_bytes([header[4], header[5]]));
+                    let mut pdu = vec![0u8; length.saturating_sub(1)];
+                    if stream.read_exact(&mut pdu).is_err() {
+                        return;
+                    }
+                    if let BadPlc::Late(delay) = behaviour {
+                        std::thread::sleep(delay);
+                    }
+                    let function = pdu.first().copied().unwrap_or(0);
+                    // Source: Modbus Application Protocol Specification V1.1b3 §7 (exception responses).
+                    let answer = [header[0], header[1], 0, 0, 0, 3, header[6], function | 0x80, 0x06];
+                    if stream.write_all(&answer).is_err() {
+                        return;
+                    }
+                }
+            });
+        }
+    });
+    port
+}

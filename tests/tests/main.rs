@@ -7,6 +7,7 @@ mod bad_input;
 mod check_command;
 mod classic_loop;
 mod drive;
+mod faults;
 mod filters;
 mod live;
 mod modbus_interop;

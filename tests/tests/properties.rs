@@ -124,3 +124,140 @@ proptest! {
         prop_assert_eq!(bits(&first), bits(&second));
     }
 }
+
+mod states {
+    //! The state machine: for random event sequences, fallback is never left without its
+    //! recovery condition, and no write ever leaves the operating bounds, in any state.
+
+    use proptest::prelude::*;
+    use ridgeline::config::{Mode, Range, Recover};
+    use ridgeline::supervisor::control::{Control, Reading};
+    use ridgeline::supervisor::states::{Event, Machine, State, Trip};
+
+    fn mode() -> impl Strategy<Value = Mode> {
+        prop::sample::select(vec![Mode::Seeking, Mode::Holding, Mode::Observing, Mode::Stopped])
+    }
+
+    fn trip() -> impl Strategy<Value = Trip> {
+        prop::sample::select(Trip::ALL.to_vec())
+    }
+
+    fn event() -> impl Strategy<Value = (Event, Option<Trip>)> {
+        prop_oneof![
+            trip().prop_map(|t| (Event::Fault(t), Some(t))),
+            (0.0..200.0f64).prop_map(|h| (Event::Healthy { healthy_s: h }, None)),
+            Just((Event::PermitWithdrawn, None)),
+            Just((Event::PermitGranted, None)),
+            (mode(), prop::option::of(trip())).prop_map(|(m, f)| (Event::Ask(m), f)),
+        ]
+    }
+
+    proptest! {
+        #![proptest_config(ProptestConfig { cases: 2000, ..ProptestConfig::default() })]
+
+        #[test]
+        fn fallback_is_never_left_without_its_recovery_condition(
+            start in mode(),
+            auto in any::<bool>(),
+            recover_after_s in 1.0..100.0f64,
+            events in prop::collection::vec(event(), 1..60),
+        ) {
+            let recover = if auto { Recover::Auto } else { Recover::Manual };
+            let mut m = Machine::new(start, recover, recover_after_s);
+            for (event, fault_now) in events {
+                let before = m;
+                let _ = m.on(event, fault_now);
+                let left = before.state == State::Fallback && !matches!(m.state, State::Fallback | State::NoPermit);
+                let forgot = before.tripped.is_some() && m.tripped.is_none();
+                if left || forgot {
+                    let acknowledged = matches!(event, Event::Ask(_)) && fault_now.is_none();
+                    let healed = matches!(event, Event::Healthy { healthy_s } if auto && healthy_s >= recover_after_s);
+                    prop_assert!(acknowledged || healed, "{before:?} --{event:?} (fault {fault_now:?})--> {m:?}");
+                }
+                // A loop that is not permitted never writes, and a tripped one only writes its fallback.
+                if !m.permitted && matches!(m.mode, Mode::Seeking | Mode::Holding) {
+                    prop_assert!(!m.state.writes(), "{m:?}");
+                }
+            }
+        }
+    }
+
+    #[derive(Debug, Clone)]
+    enum Step {
+        Tick { objective: Option<f64>, permit: Option<bool>, dt: f64, writes_ok: bool },
+        Ask(Mode),
+        Bounds(f64, f64),
+        ReadBack(f64),
+    }
+
+    fn step() -> impl Strategy<Value = Step> {
+        let objective = prop_oneof![
+            6 => (-10.0..110.0f64).prop_map(Some),
+            1 => Just(Some(f64::NAN)),
+            1 => Just(None),
+        ];
+        prop_oneof![
+            8 => (objective, prop::option::of(any::<bool>()), 0.0..3.0f64, prop::bool::weighted(0.9))
+                .prop_map(|(objective, permit, dt, writes_ok)| Step::Tick { objective, permit, dt, writes_ok }),
+            1 => mode().prop_map(Step::Ask),
+            1 => (0.0..6.0f64, 0.0..6.0f64).prop_map(|(a, b)| Step::Bounds(a.min(b), a.max(b))),
+            1 => (-1.0..7.0f64).prop_map(Step::ReadBack),
+        ]
+    }
+
+    fn config(on_trip: &str, recover: &str) -> ridgeline::config::LoopConfig {
+        let text = format!(
+            "[links.plc]\nmodbus_tcp = \"127.0.0.1:5020\"\n[tags.y]\nlink = \"plc\"\ninput_register = 0\ntype = \"f32\"\n\
+             [[loops]]\nname = \"l\"\nobjective = \"y\"\ndirection = \"maximize\"\ntick_s = 1.0\nstart_mode = \"seeking\"\n\
+             [loops.filter]\nhighpass_hz = 0.01\n[loops.watchdog]\nstale_after_s = 5\nobjective_range = [0, 100]\n\
+             on_trip = \"{on_trip}\"\n{recover}\n[[loops.inputs]]\nname = \"u\"\n\
+             write = {{ link = \"plc\", holding_register = 0, type = \"f32\" }}\nlimits = [0, 6]\nbounds = [1, 5]\n\
+             safe = 0.5\nmax_rate_per_s = 0.5\ndither_amplitude = 0.1\ndither_period_s = 20\ngain = 0.05\n"
+        );
+        ridgeline::config::parse(&text, "property").expect("valid").loops.remove(0)
+    }
+
+    proptest! {
+        #![proptest_config(ProptestConfig { cases: 500, ..ProptestConfig::default() })]
+
+        #[test]
+        fn no_write_ever_leaves_the_operating_bounds_in_any_state(
+            hold in any::<bool>(),
+            auto in any::<bool>(),
+            steps in prop::collection::vec(step(), 1..200),
+        ) {
+            let recover = if auto { "recover = \"auto\"\nrecover_after_s = 3" } else { "" };
+            let mut c = Control::new(&config(if hold { "hold" } else { "safe" }, recover));
+            let (mut now, mut tick) = (0.0, 0u64);
+            let mut bounds = Range { min: 1.0, max: 5.0 };
+            c.start(now, &[3.0]);
+            for s in steps {
+                match s {
+                    Step::Tick { objective, permit, dt, writes_ok } => {
+                        now += dt;
+                        tick += 1;
+                        let values = objective.map(|j| [j]);
+                        let report = c.tick(tick, now, Reading { tags: values.as_ref().map(|v| &v[..]), permit });
+                        if report.write {
+                            let v = c.applied()[0];
+                            prop_assert!(v.is_finite() && bounds.contains(v), "wrote {v} outside {bounds} in {:?}", c.state());
+                            prop_assert!(c.state().writes());
+                            c.note_writes(writes_ok, now);
+                        }
+                    }
+                    Step::Ask(m) => { let _ = c.ask(m); }
+                    Step::Bounds(lo, hi) if hi - lo >= 0.2 => {
+                        bounds = Range { min: lo, max: hi };
+                        c.set_bounds(0, bounds);
+                    }
+                    Step::Bounds(..) => {}
+                    Step::ReadBack(v) => {
+                        if c.wants_read_back() {
+                            c.restart_from(&[Some(v)]);
+                        }
+                    }
+                }
+            }
+        }
+    }
+}

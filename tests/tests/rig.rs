@@ -10,13 +10,23 @@ use ridgeline_tests::{
     Peer, f32_from_words, free_port, get_json, read_holding_registers, spawn_service, spawn_sim, write_file,
 };
 
-/// A static bowl with its peak at u = 3 (no lag, no noise), u starting at 2.
+/// A static bowl with its peak at u = 3 (no lag, no noise), u starting at 2. Two more
+/// holding registers stand for the PLC's own: a permit the HMI sets (300, f32, 1 = yes)
+/// and a heartbeat word the PLC watches (400).
 const PLANT: &str = r#"
 step_s = 0.01
 [[inputs]]
 name = "u"
 initial = 2.0
 holding_register = 200
+[[inputs]]
+name = "enable"
+initial = 1.0
+holding_register = 300
+[[inputs]]
+name = "beat"
+initial = 0.0
+holding_register = 400
 [[outputs]]
 name = "y"
 input_register = 100
@@ -111,6 +121,12 @@ impl Rig {
             self.plant_port.set(Some(port));
             port
         })
+    }
+
+    /// Points the loop at another server (a misbehaving PLC) instead of the simulator.
+    pub fn with_plant_port(self, port: u16) -> Self {
+        self.plant_port.set(Some(port));
+        self
     }
 
     /// The service's API address, once it runs.

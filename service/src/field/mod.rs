@@ -248,6 +248,12 @@ impl LoopIo {
         }
     }
 
+    /// Reads the heartbeat register, when the loop has one.
+    pub async fn read_heartbeat(&self) -> Option<Result<u16, LinkError>> {
+        let (link, register) = self.heartbeat.as_ref()?;
+        Some(link.read(RegisterSpace::Holding, *register, 1).await.map(|w| w.first().copied().unwrap_or(0)))
+    }
+
     /// Reads back the setpoint currently in input `input`'s register.
     pub async fn read_back(&self, input: usize) -> Result<f64, LinkError> {
         let Some(target) = self.writes.get(input) else { return Ok(f64::NAN) };

@@ -191,7 +191,7 @@ impl LoopTask {
             let all_ok = self.write_applied().await;
             self.control.note_writes(all_ok, now_s);
         }
-        if self.config.heartbeat.is_some() {
+        if self.config.heartbeat.is_some() && self.control.is_started() {
             // A failed heartbeat is a link error (counted and logged by the link), not a trip.
             let _ = self.io.write_heartbeat(self.heartbeat).await;
             self.heartbeat = self.heartbeat.wrapping_add(1);
@@ -253,6 +253,11 @@ impl LoopTask {
                     "read_back": back,
                 }),
             );
+        }
+        // The heartbeat goes on from the register's value, so the PLC sees it change at
+        // once after a restart.
+        if let Some(Ok(last)) = self.io.read_heartbeat().await {
+            self.heartbeat = last.wrapping_add(1);
         }
         self.control.start(self.now_s(), &estimates);
         let detail = serde_json::Value::Object(detail);

@@ -1,0 +1,287 @@
+//! Fault tests: the real binary against a real Modbus peer on loopback, with every fault
+//! an operator worries about. Each prints what it measured (`cargo test -- --nocapture`
+//! shows it); the README's reliability table comes from these lines.
+
+use std::time::{Duration, Instant};
+
+use ridgeline::api::token_sha256;
+use ridgeline_tests::{
+    BadPlc, bad_plc, f32_words, http_request, read_holding_registers, wait_until, write_holding_registers,
+};
+
+use crate::rig::Rig;
+
+/// The rig's loop ticks every 50 ms; its watchdog calls the objective stale after 1 s.
+const TICK: Duration = Duration::from_millis(50);
+const STALE: Duration = Duration::from_secs(1);
+/// Polling the API and the register adds this much to a measured time, at most.
+const MEASURING: Duration = Duration::from_millis(300);
+const OPERATOR: &str = "fault-test-operator-token";
+
+fn access() -> String {
+    format!(
+        "[[access]]\nname = \"night-shift\"\ntoken_sha256 = \"{}\"\nrole = \"operator\"\n",
+        token_sha256(OPERATOR)
+    )
+}
+
+fn state(rig: &Rig) -> String {
+    rig.status().map(|s| s["state"].as_str().unwrap_or("").to_owned()).unwrap_or_default()
+}
+
+/// Waits until the loop is in `wanted`; how long that took.
+fn time_until_state(rig: &Rig, wanted: &str, limit: Duration) -> Duration {
+    let started = Instant::now();
+    wait_until(&format!("the loop is {wanted}"), limit, || state(rig) == wanted);
+    started.elapsed()
+}
+
+fn put_mode(rig: &Rig, mode: &str) -> ridgeline_tests::HttpAnswer {
+    let bearer = format!("Bearer {OPERATOR}");
+    let body = format!("{{\"mode\": \"{mode}\"}}");
+    http_request(rig.api(), "PUT", "/api/v1/loops/bowl/mode", &[("Authorization", &bearer)], Some(&body))
+        .unwrap()
+}
+
+fn events(rig: &Rig) -> Vec<serde_json::Value> {
+    http_request(rig.api(), "GET", "/api/v1/events?loop=bowl&limit=1000", &[], None)
+        .unwrap()
+        .json()
+        .as_array()
+        .unwrap()
+        .clone()
+}
+
+#[test]
+fn a_cut_link_trips_to_fallback_and_safe_lands_on_the_first_tick_it_answers_again() {
+    let rig = Rig::new("");
+    let mut sim = rig.sim();
+    let _service = rig.service();
+    wait_until("the loop is writing", Duration::from_secs(20), || rig.setpoint().is_some_and(|v| v != 2.0));
+    sim.stop();
+    let to_fallback = time_until_state(&rig, "fallback", Duration::from_secs(10));
+    eprintln!("measured: link cut -> fallback in {to_fallback:?} (stale_after_s {STALE:?}, tick {TICK:?})");
+    // Source: issue requirement, fallback within stale_after_s plus one tick (plus our polling).
+    assert!(to_fallback <= STALE + TICK + MEASURING, "{to_fallback:?}");
+    let status = rig.status().unwrap();
+    assert_eq!(status["fallback_reason"], "stale");
+
+    let _sim = rig.sim();
+    let back = Instant::now();
+    wait_until("safe is in the register", Duration::from_secs(5), || rig.setpoint() == Some(1.0));
+    let to_safe = back.elapsed();
+    eprintln!("measured: PLC back -> safe setpoint in the register in {to_safe:?}");
+    assert!(to_safe <= TICK + MEASURING, "{to_safe:?}");
+    let tripped = events(&rig).into_iter().find(|e| e["kind"] == "tripped").expect("a trip event");
+    assert_eq!(tripped["detail"]["trip"], "stale");
+    assert_eq!(tripped["actor"], "system");
+}
+
+#[test]
+fn an_objective_frozen_outside_its_plausible_range_trips_with_that_reason() {
+    // The plant's objective sits between 8 and 10; a plausible range of 0..5 calls it wrong.
+    let rig = Rig::new("").edit("stale_after_s = 1", "stale_after_s = 1\nobjective_range = [0.0, 5.0]");
+    let _sim = rig.sim();
+    let _service = rig.service();
+    let took = time_until_state(&rig, "fallback", Duration::from_secs(10));
+    eprintln!("measured: implausible objective -> fallback in {took:?} after the API answered");
+    let status = rig.status().unwrap();
+    assert_eq!(status["fallback_reason"], "out_of_range");
+    wait_until("safe is in the register", Duration::from_secs(5), || rig.setpoint() == Some(1.0));
+}
+
+#[test]
+fn a_nan_objective_trips_and_no_nan_is_ever_written() {
+    // y / (y - y) is 0/0: NaN at every tick.
+    let rig = Rig::seeking("", "y / (y - y)");
+    let _sim = rig.sim();
+    let _service = rig.service();
+    let took = time_until_state(&rig, "fallback", Duration::from_secs(10));
+    eprintln!("measured: NaN objective -> fallback in {took:?} after the API answered");
+    assert_eq!(rig.status().unwrap()["fallback_reason"], "not_finite");
+    for _ in 0..20 {
+        let v = rig.setpoint().expect("register readable");
+        assert!(v.is_finite() && (v == 2.0 || v == 1.0), "the register held {v}");
+        std::thread::sleep(TICK);
+    }
+    assert_eq!(rig.setpoint(), Some(1.0));
+}
+
+#[test]
+fn without_the_plcs_permit_nothing_is_written_and_its_return_restarts_bumpless() {
+    let permit = "\n[tags.enable]\nlink = \"plc\"\nholding_register = 300\ntype = \"f32\"\n";
+    let rig = Rig::new("permit = \"enable\"").with_tables(permit);
+    let _sim = rig.sim();
+    // The operator at the HMI withholds permission before the service starts.
+    assert!(write_holding_registers(rig.plant_port(), 300, &f32_words(0.0)));
+    let _service = rig.service();
+    wait_until("no_permit", Duration::from_secs(10), || state(&rig) == "no_permit");
+    let untouched = read_holding_registers(rig.plant_port(), 200, 2).unwrap();
+    for _ in 0..40 {
+        std::thread::sleep(TICK);
+        assert_eq!(
+            read_holding_registers(rig.plant_port(), 200, 2).unwrap(),
+            untouched,
+            "a write without permission"
+        );
+    }
+    assert_eq!(rig.status().unwrap()["permitted"], false);
+    // Permission back: the loop restarts from what the PLC holds, then seeks.
+    assert!(write_holding_registers(rig.plant_port(), 300, &f32_words(1.0)));
+    let took = time_until_state(&rig, "seeking", Duration::from_secs(5));
+    eprintln!("measured: permit back -> seeking in {took:?}");
+    wait_until("the loop writes again", Duration::from_secs(5), || rig.setpoint().is_some_and(|v| v != 2.0));
+    let first = rig.setpoint().unwrap();
+    assert!((first - 2.0).abs() <= 0.15, "bumpless: started next to 2.0, wrote {first}");
+    assert!(events(&rig).iter().any(|e| e["kind"] == "permit_granted"));
+}
+
+#[test]
+fn manual_recovery_is_refused_with_409_while_the_fault_persists_and_accepted_after() {
+    let rig = Rig::new("").with_service("", &access());
+    let mut sim = rig.sim();
+    let _service = rig.service();
+    wait_until("the loop is writing", Duration::from_secs(20), || rig.setpoint().is_some_and(|v| v != 2.0));
+    sim.stop();
+    time_until_state(&rig, "fallback", Duration::from_secs(10));
+    let refused = put_mode(&rig, "seeking");
+    assert_eq!(refused.status, 409, "{}", refused.body);
+    assert_eq!(refused.json()["error"]["code"], "conflict");
+    assert!(refused.body.contains("have not been read"), "the refusal names the condition: {}", refused.body);
+    assert_eq!(state(&rig), "fallback");
+
+    let _sim = rig.sim();
+    wait_until("reads are good again", Duration::from_secs(5), || {
+        rig.status().and_then(|s| s["objective"].as_f64()).is_some_and(|j| j > 0.0)
+            && put_mode(&rig, "seeking").status == 200
+    });
+    assert_eq!(state(&rig), "seeking");
+    let recovered = events(&rig).into_iter().find(|e| e["kind"] == "recovered").expect("a recovery event");
+    assert_eq!(recovered["actor"], "night-shift");
+}
+
+#[test]
+fn automatic_recovery_returns_to_seeking_after_the_healthy_interval() {
+    let rig =
+        Rig::new("").edit("stale_after_s = 1", "stale_after_s = 1\nrecover = \"auto\"\nrecover_after_s = 1");
+    let mut sim = rig.sim();
+    let _service = rig.service();
+    wait_until("the loop is writing", Duration::from_secs(20), || rig.setpoint().is_some_and(|v| v != 2.0));
+    sim.stop();
+    time_until_state(&rig, "fallback", Duration::from_secs(10));
+    let _sim = rig.sim();
+    let took = time_until_state(&rig, "seeking", Duration::from_secs(10));
+    eprintln!("measured: PLC back -> seeking again (recover_after_s 1 s) in {took:?}");
+    assert!(took >= Duration::from_millis(900), "not before the healthy interval: {took:?}");
+    assert!(events(&rig).iter().any(|e| e["kind"] == "recovered" && e["actor"] == "system"));
+}
+
+#[test]
+fn the_heartbeat_increments_every_tick_and_wraps_after_65535() {
+    let rig = Rig::new("").edit(
+        "[[loops.inputs]]",
+        "[loops.heartbeat]\nlink = \"plc\"\nholding_register = 400\n\n[[loops.inputs]]",
+    );
+    let _sim = rig.sim();
+    // The PLC's heartbeat word stands at 65533: the service goes on from there.
+    assert!(write_holding_registers(rig.plant_port(), 400, &[65533]));
+    let _service = rig.service();
+    let mut seen = Vec::new();
+    wait_until("the heartbeat wrapped", Duration::from_secs(10), || {
+        if let Some(w) = read_holding_registers(rig.plant_port(), 400, 1) {
+            if seen.last() != Some(&w[0]) {
+                seen.push(w[0]);
+            }
+        }
+        seen.contains(&2)
+    });
+    // Source: issue requirement, a u16 counter that wraps at 65535 -> 0.
+    let from = seen.iter().position(|&v| v == 65534).expect("counting from the register's value");
+    assert_eq!(&seen[from..from + 2], &[65534, 65535]);
+    let wrapped = seen.iter().position(|&v| v == 0).expect("wrapped to 0");
+    assert!(wrapped > from && seen[wrapped - 1] == 65535, "{seen:?}");
+}
+
+#[test]
+fn after_kill_9_a_restart_resumes_from_the_stored_estimate() {
+    let rig = Rig::new("");
+    let _sim = rig.sim();
+    let mut service = rig.service();
+    wait_until("the estimate moved well away from the start", Duration::from_secs(30), || {
+        rig.estimate().is_some_and(|e| e > 2.4)
+    });
+    std::thread::sleep(Duration::from_millis(300));
+    service.stop();
+    let _service = rig.service();
+    wait_until("the restarted loop started", Duration::from_secs(10), || {
+        events(&rig).iter().any(|e| e["kind"] == "loop_started")
+    });
+    let started = events(&rig).into_iter().find(|e| e["kind"] == "loop_started").unwrap();
+    let u = &started["detail"]["inputs"]["u"];
+    assert_eq!(u["from"], "stored", "{started}");
+    let stored = u["stored"].as_f64().unwrap();
+    assert!(stored > 2.4, "{started}");
+    assert_eq!(u["estimate"].as_f64().unwrap(), stored);
+    // The read-back (estimate plus dither) differs from the stored estimate: the choice is visible.
+    assert!(u["read_back"].as_f64().is_some());
+}
+
+#[test]
+fn a_loop_against_a_plc_answering_busy_never_starts_and_no_task_gets_stuck() {
+    let rig = Rig::new("").with_plant_port(bad_plc(BadPlc::Busy, None));
+    let service = rig.service();
+    // It cannot read its setpoints back, so it writes nothing; and it keeps ticking.
+    std::thread::sleep(STALE + TICK * 4);
+    let status = rig.status().unwrap();
+    assert!(status["ticks"].as_u64().unwrap() > 10, "the loop keeps ticking: {status}");
+    assert!(status["inputs"][0]["applied"].is_null(), "nothing written: {status}");
+    assert_eq!(service.terminate(), Some(0), "it stops cleanly");
+}
+
+#[test]
+fn a_loop_against_a_plc_answering_after_twice_the_timeout_keeps_ticking_and_stops_cleanly() {
+    let rig = Rig::new("").with_plant_port(bad_plc(BadPlc::Late(Duration::from_millis(600)), None));
+    let service = rig.service();
+    std::thread::sleep(Duration::from_secs(2));
+    let before = rig.status().unwrap()["ticks"].as_u64().unwrap();
+    std::thread::sleep(Duration::from_secs(1));
+    let after = rig.status().unwrap()["ticks"].as_u64().unwrap();
+    assert!(after > before, "the loop keeps ticking through timeouts ({before} -> {after})");
+    let stopping = Instant::now();
+    assert_eq!(service.terminate(), Some(0));
+    assert!(stopping.elapsed() < Duration::from_secs(10), "stopped in {:?}", stopping.elapsed());
+}
+
+/// A running loop whose PLC starts misbehaving on the same port trips on the stale
+/// objective within stale_after_s plus a tick (plus the timeout of a request in flight).
+fn trips_when_the_plc_turns(behaviour: BadPlc, label: &str, slack: Duration) {
+    let rig = Rig::new("");
+    let mut sim = rig.sim();
+    let _service = rig.service();
+    wait_until("the loop is writing", Duration::from_secs(20), || rig.setpoint().is_some_and(|v| v != 2.0));
+    sim.stop();
+    bad_plc(behaviour, Some(rig.plant_port()));
+    let took = time_until_state(&rig, "fallback", Duration::from_secs(10));
+    eprintln!("measured: PLC {label} -> fallback in {took:?}");
+    assert!(took <= STALE + TICK + slack + MEASURING, "{took:?}");
+    assert_eq!(rig.status().unwrap()["fallback_reason"], "stale");
+    // And it keeps ticking: no task is stuck on the misbehaving PLC.
+    let before = rig.status().unwrap()["ticks"].as_u64().unwrap();
+    std::thread::sleep(Duration::from_millis(800));
+    assert!(rig.status().unwrap()["ticks"].as_u64().unwrap() > before);
+}
+
+#[test]
+fn a_running_loop_trips_when_the_plc_starts_answering_busy() {
+    trips_when_the_plc_turns(BadPlc::Busy, "answering busy (0x06)", Duration::ZERO);
+}
+
+#[test]
+fn a_running_loop_trips_when_the_plc_answers_after_twice_the_timeout() {
+    // The rig's link times out after 300 ms; the PLC answers after 600 ms.
+    trips_when_the_plc_turns(
+        BadPlc::Late(Duration::from_millis(600)),
+        "answering after twice the timeout",
+        Duration::from_millis(600),
+    );
+}
