@@ -188,10 +188,10 @@ fn the_heartbeat_increments_every_tick_and_wraps_after_65535() {
     let _service = rig.service();
     let mut seen = Vec::new();
     wait_until("the heartbeat wrapped", Duration::from_secs(10), || {
-        if let Some(w) = read_holding_registers(rig.plant_port(), 400, 1) {
-            if seen.last() != Some(&w[0]) {
-                seen.push(w[0]);
-            }
+        if let Some(w) = read_holding_registers(rig.plant_port(), 400, 1)
+            && seen.last() != Some(&w[0])
+        {
+            seen.push(w[0]);
         }
         seen.contains(&2)
     });
