@@ -212,10 +212,12 @@ fn after_kill_9_a_restart_resumes_from_the_stored_estimate() {
     });
     std::thread::sleep(Duration::from_millis(300));
     service.stop();
+    let restarting = Instant::now();
     let _service = rig.service();
     wait_until("the restarted loop started", Duration::from_secs(10), || {
         events(&rig).iter().any(|e| e["kind"] == "loop_started")
     });
+    eprintln!("measured: kill -9, restart -> resumed from the stored estimate in {:?}", restarting.elapsed());
     let started = events(&rig).into_iter().find(|e| e["kind"] == "loop_started").unwrap();
     let u = &started["detail"]["inputs"]["u"];
     assert_eq!(u["from"], "stored", "{started}");

@@ -44,7 +44,9 @@ fn sigterm_writes_the_shutdown_value_and_exits_0() {
     let _sim = rig.sim();
     let service = rig.service();
     wait_until("the loop is writing", Duration::from_secs(20), || rig.setpoint().is_some_and(|v| v != 2.0));
+    let stopping = std::time::Instant::now();
     assert_eq!(service.terminate(), Some(0));
+    eprintln!("measured: SIGTERM -> shutdown value written and exit 0 in {:?}", stopping.elapsed());
     assert_eq!(rig.setpoint(), Some(1.0), "safe = 1.0 written on the way out");
 }
 

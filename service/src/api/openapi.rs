@@ -115,7 +115,7 @@ pub fn document() -> Value {
                         "id": {"type": "integer"},
                         "at": {"type": "string", "format": "date-time"},
                         "loop": {"type": ["string", "null"]},
-                        "kind": {"type": "string", "description": "mode_changed, bounds_changed, loop_started, loop_stopped, link_down, link_up, service_started, service_stopped, ..."},
+                        "kind": {"type": "string", "description": "mode_changed, bounds_changed, tripped, recovered, permit_withdrawn, permit_granted, loop_started, loop_stopped, link_down, link_up, service_started, service_stopped"},
                         "detail": {"description": "JSON detail of the event."},
                         "actor": {"type": "string", "description": "The token's name, or \"system\"."}
                     }
@@ -172,7 +172,7 @@ pub fn document() -> Value {
                 }))
             }},
             "/api/v1/events": {"get": {
-                "summary": "Mode changes, bound changes, starts and stops, link up and down: newest first",
+                "summary": "Mode and bound changes, trips and recoveries, permits, starts and stops, link up and down: newest first",
                 "security": [{}, {"bearer": []}],
                 "parameters": [
                     {"name": "loop", "in": "query", "schema": {"type": "string"}, "description": "Only this loop's events."},
