@@ -9,18 +9,10 @@ use std::sync::{Arc, Mutex};
 use std::time::{Duration, Instant};
 
 use ridgeline::app::{App, Options};
-use ridgeline::sim::server::PlantServer;
 use tokio_util::sync::CancellationToken;
 
 mod scale;
-use scale::{LOOPS_PER_PLC, config_text, plant_text};
-
-fn percentile(sorted: &[Duration], p: f64) -> Duration {
-    if sorted.is_empty() {
-        return Duration::ZERO;
-    }
-    sorted[((sorted.len() - 1) as f64 * p).round() as usize]
-}
+use scale::{LOOPS_PER_PLC, config_text, percentile, start_plcs};
 
 fn main() -> anyhow::Result<()> {
     let numbers: Vec<u64> = std::env::args().skip(1).filter_map(|a| a.parse().ok()).collect();
@@ -29,20 +21,8 @@ fn main() -> anyhow::Result<()> {
     let seconds = numbers.get(2).copied().unwrap_or(20);
     let plcs = loops.div_ceil(LOOPS_PER_PLC);
 
-    let sims = tokio::runtime::Builder::new_multi_thread()
-        .worker_threads(1)
-        .thread_name("plant-sim")
-        .enable_all()
-        .build()?;
-    let spec = ridgeline::sim::parse(&plant_text(), "bench-plant")?;
     let stop = CancellationToken::new();
-    let mut ports = Vec::new();
-    for _ in 0..plcs {
-        let server = sims.block_on(PlantServer::bind(&spec, "127.0.0.1:0".parse()?, 1.0))?;
-        ports.push(server.local_addr()?.port());
-        let stop = stop.clone();
-        sims.spawn(async move { server.run_until(stop.cancelled_owned()).await });
-    }
+    let (_sims, ports) = start_plcs(plcs, &stop)?;
 
     let service = tokio::runtime::Builder::new_multi_thread()
         .worker_threads(2)

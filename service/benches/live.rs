@@ -9,12 +9,11 @@ use std::sync::{Arc, Mutex};
 use std::time::{Duration, Instant};
 
 use ridgeline::field::Links;
-use ridgeline::sim::server::PlantServer;
 use ridgeline::supervisor::{LoopTask, OnTick, Reporting, schedule};
 use tokio_util::sync::CancellationToken;
 
 mod scale;
-use scale::{LOOPS_PER_PLC, TICK_S, config_text, plant_text};
+use scale::{LOOPS_PER_PLC, TICK_S, config_text, percentile, start_plcs};
 
 /// A loop's tick, timed.
 struct Timed {
@@ -60,13 +59,6 @@ fn thread_cpu_s(prefix: &str) -> f64 {
     total
 }
 
-fn percentile(sorted: &[Duration], p: f64) -> Duration {
-    if sorted.is_empty() {
-        return Duration::ZERO;
-    }
-    sorted[((sorted.len() - 1) as f64 * p).round() as usize]
-}
-
 fn main() -> anyhow::Result<()> {
     // `cargo bench` passes `--bench`; numbers after it are ours.
     let numbers: Vec<u64> = std::env::args().skip(1).filter_map(|a| a.parse().ok()).collect();
@@ -74,20 +66,8 @@ fn main() -> anyhow::Result<()> {
     let seconds = numbers.get(1).copied().unwrap_or(30);
     let plcs = loops.div_ceil(LOOPS_PER_PLC);
 
-    let sims = tokio::runtime::Builder::new_multi_thread()
-        .worker_threads(1)
-        .thread_name("plant-sim")
-        .enable_all()
-        .build()?;
-    let spec = ridgeline::sim::parse(&plant_text(), "bench-plant")?;
     let stop_sims = CancellationToken::new();
-    let mut ports = Vec::new();
-    for _ in 0..plcs {
-        let server = sims.block_on(PlantServer::bind(&spec, "127.0.0.1:0".parse()?, 1.0))?;
-        ports.push(server.local_addr()?.port());
-        let stop = stop_sims.clone();
-        sims.spawn(async move { server.run_until(stop.cancelled_owned()).await });
-    }
+    let (_sims, ports) = start_plcs(plcs, &stop_sims)?;
 
     let config =
         ridgeline::config::parse(&config_text(&ports), "bench-config").map_err(|p| anyhow::anyhow!("{p}"))?;

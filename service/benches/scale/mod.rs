@@ -41,3 +41,34 @@ pub fn config_text(ports: &[u16]) -> String {
     }
     text
 }
+
+/// The middle value of sorted durations at fraction `p` (0.5 for the median).
+pub fn percentile(sorted: &[std::time::Duration], p: f64) -> std::time::Duration {
+    if sorted.is_empty() {
+        return std::time::Duration::ZERO;
+    }
+    sorted[((sorted.len() - 1) as f64 * p).round() as usize]
+}
+
+/// Starts `plcs` simulated PLCs on a runtime of their own (threads named `plant-sim`, so
+/// their CPU can be told apart); returns the runtime and their ports. They stop with `stop`.
+pub fn start_plcs(
+    plcs: usize,
+    stop: &tokio_util::sync::CancellationToken,
+) -> anyhow::Result<(tokio::runtime::Runtime, Vec<u16>)> {
+    let sims = tokio::runtime::Builder::new_multi_thread()
+        .worker_threads(1)
+        .thread_name("plant-sim")
+        .enable_all()
+        .build()?;
+    let spec = ridgeline::sim::parse(&plant_text(), "bench-plant")?;
+    let mut ports = Vec::new();
+    for _ in 0..plcs {
+        let server =
+            sims.block_on(ridgeline::sim::server::PlantServer::bind(&spec, "127.0.0.1:0".parse()?, 1.0))?;
+        ports.push(server.local_addr()?.port());
+        let stop = stop.clone();
+        sims.spawn(async move { server.run_until(stop.cancelled_owned()).await });
+    }
+    Ok((sims, ports))
+}
