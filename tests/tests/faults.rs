@@ -14,8 +14,9 @@ use crate::rig::Rig;
 /// The rig's loop ticks every 50 ms; its watchdog calls the objective stale after 1 s.
 const TICK: Duration = Duration::from_millis(50);
 const STALE: Duration = Duration::from_secs(1);
-/// Polling the API and the register adds this much to a measured time, at most.
-const MEASURING: Duration = Duration::from_millis(300);
+/// Polling the API and the register (every 5 ms, one request at a time) adds this much
+/// to a measured time, at most, on a busy 2-core machine.
+const MEASURING: Duration = Duration::from_millis(100);
 const OPERATOR: &str = "fault-test-operator-token";
 
 fn access() -> String {
@@ -29,11 +30,19 @@ fn state(rig: &Rig) -> String {
     rig.status().map(|s| s["state"].as_str().unwrap_or("").to_owned()).unwrap_or_default()
 }
 
+/// Waits until `condition` holds, polling every 5 ms; how long that took.
+fn time_until(what: &str, limit: Duration, mut condition: impl FnMut() -> bool) -> Duration {
+    let started = Instant::now();
+    while !condition() {
+        assert!(started.elapsed() < limit, "timed out after {limit:?} waiting until {what}");
+        std::thread::sleep(Duration::from_millis(5));
+    }
+    started.elapsed()
+}
+
 /// Waits until the loop is in `wanted`; how long that took.
 fn time_until_state(rig: &Rig, wanted: &str, limit: Duration) -> Duration {
-    let started = Instant::now();
-    wait_until(&format!("the loop is {wanted}"), limit, || state(rig) == wanted);
-    started.elapsed()
+    time_until(&format!("the loop is {wanted}"), limit, || state(rig) == wanted)
 }
 
 fn put_mode(rig: &Rig, mode: &str) -> ridgeline_tests::HttpAnswer {
@@ -67,10 +76,10 @@ fn a_cut_link_trips_to_fallback_and_safe_lands_on_the_first_tick_it_answers_agai
     assert_eq!(status["fallback_reason"], "stale");
 
     let _sim = rig.sim();
-    let back = Instant::now();
-    wait_until("safe is in the register", Duration::from_secs(5), || rig.setpoint() == Some(1.0));
-    let to_safe = back.elapsed();
+    let to_safe =
+        time_until("safe is in the register", Duration::from_secs(5), || rig.setpoint() == Some(1.0));
     eprintln!("measured: PLC back -> safe setpoint in the register in {to_safe:?}");
+    // Source: issue requirement, the fallback value lands on the first tick the link answers.
     assert!(to_safe <= TICK + MEASURING, "{to_safe:?}");
     let tripped = events(&rig).into_iter().find(|e| e["kind"] == "tripped").expect("a trip event");
     assert_eq!(tripped["detail"]["trip"], "stale");
@@ -85,6 +94,7 @@ fn an_objective_frozen_outside_its_plausible_range_trips_with_that_reason() {
     let _service = rig.service();
     let took = time_until_state(&rig, "fallback", Duration::from_secs(10));
     eprintln!("measured: implausible objective -> fallback in {took:?} after the API answered");
+    assert!(took <= TICK + MEASURING, "at once, not after stale_after_s: {took:?}");
     let status = rig.status().unwrap();
     assert_eq!(status["fallback_reason"], "out_of_range");
     wait_until("safe is in the register", Duration::from_secs(5), || rig.setpoint() == Some(1.0));
@@ -126,13 +136,19 @@ fn without_the_plcs_permit_nothing_is_written_and_its_return_restarts_bumpless()
         );
     }
     assert_eq!(rig.status().unwrap()["permitted"], false);
-    // Permission back: the loop restarts from what the PLC holds, then seeks.
+    // Meanwhile the operator moves the setpoint by hand at the HMI.
+    assert!(write_holding_registers(rig.plant_port(), 200, &f32_words(2.7)));
+    // Permission back: the loop restarts from what the PLC holds now, then seeks.
     assert!(write_holding_registers(rig.plant_port(), 300, &f32_words(1.0)));
-    let took = time_until_state(&rig, "seeking", Duration::from_secs(5));
-    eprintln!("measured: permit back -> seeking in {took:?}");
-    wait_until("the loop writes again", Duration::from_secs(5), || rig.setpoint().is_some_and(|v| v != 2.0));
+    let took = time_until("the loop writes again", Duration::from_secs(5), || {
+        rig.setpoint().is_some_and(|v| (v - 2.7).abs() > 1e-6)
+    });
+    eprintln!("measured: permit back -> writing in {took:?}");
     let first = rig.setpoint().unwrap();
-    assert!((first - 2.0).abs() <= 0.15, "bumpless: started next to 2.0, wrote {first}");
+    // The dither (0.1) and one tick at the rate limit (0.1) away from the operator's 2.7,
+    // far from the 2.0 where the loop's own estimate stood.
+    assert!((first - 2.7).abs() <= 0.21, "bumpless: started next to the operator's 2.7, wrote {first}");
+    assert_eq!(state(&rig), "seeking");
     assert!(events(&rig).iter().any(|e| e["kind"] == "permit_granted"));
 }
 
@@ -211,14 +227,17 @@ fn after_kill_9_a_restart_resumes_from_the_stored_estimate() {
         rig.estimate().is_some_and(|e| e > 2.4)
     });
     std::thread::sleep(Duration::from_millis(300));
+    // The first run's loop_started event is in the same database: only a later one counts.
+    let first_run = events(&rig).iter().filter_map(|e| e["id"].as_i64()).max().unwrap_or(0);
     service.stop();
     let restarting = Instant::now();
     let _service = rig.service();
-    wait_until("the restarted loop started", Duration::from_secs(10), || {
-        events(&rig).iter().any(|e| e["kind"] == "loop_started")
-    });
+    let restarted = || {
+        events(&rig).into_iter().find(|e| e["kind"] == "loop_started" && e["id"].as_i64() > Some(first_run))
+    };
+    wait_until("the restarted loop started", Duration::from_secs(10), || restarted().is_some());
     eprintln!("measured: kill -9, restart -> resumed from the stored estimate in {:?}", restarting.elapsed());
-    let started = events(&rig).into_iter().find(|e| e["kind"] == "loop_started").unwrap();
+    let started = restarted().unwrap();
     let u = &started["detail"]["inputs"]["u"];
     assert_eq!(u["from"], "stored", "{started}");
     let stored = u["stored"].as_f64().unwrap();
@@ -228,30 +247,57 @@ fn after_kill_9_a_restart_resumes_from_the_stored_estimate() {
     assert!(u["read_back"].as_f64().is_some());
 }
 
-#[test]
-fn a_loop_against_a_plc_answering_busy_never_starts_and_no_task_gets_stuck() {
-    let rig = Rig::new("").with_plant_port(bad_plc(BadPlc::Busy, None));
+/// A loop whose PLC misbehaves from the start never gets a starting point, yet its
+/// watchdog trips it like a running loop, it keeps ticking, and the service stops cleanly.
+fn trips_before_it_could_start(behaviour: BadPlc, label: &str) {
+    let rig = Rig::new("").with_plant_port(bad_plc(behaviour, None));
     let service = rig.service();
-    // It cannot read its setpoints back, so it writes nothing; and it keeps ticking.
-    std::thread::sleep(STALE + TICK * 4);
+    let took = time_until_state(&rig, "fallback", STALE * 5);
+    eprintln!("measured: PLC {label} from the start -> fallback in {took:?} after the API answered");
     let status = rig.status().unwrap();
-    assert!(status["ticks"].as_u64().unwrap() > 10, "the loop keeps ticking: {status}");
-    assert!(status["inputs"][0]["applied"].is_null(), "nothing written: {status}");
+    assert_eq!(status["fallback_reason"], "stale", "{status}");
+    assert_eq!(status["inputs"][0]["estimate"], serde_json::Value::Null, "never started: {status}");
+    assert_eq!(status["inputs"][0]["applied"], 1.0, "safe is what it tries to write: {status}");
+    assert!(events(&rig).iter().any(|e| e["kind"] == "tripped" && e["detail"]["trip"] == "stale"));
+    let before = status["ticks"].as_u64().unwrap();
+    std::thread::sleep(Duration::from_millis(800));
+    let after = rig.status().unwrap()["ticks"].as_u64().unwrap();
+    assert!(after > before, "the loop keeps ticking ({before} -> {after})");
+    let stopping = Instant::now();
     assert_eq!(service.terminate(), Some(0), "it stops cleanly");
+    assert!(stopping.elapsed() < Duration::from_secs(10), "stopped in {:?}", stopping.elapsed());
 }
 
 #[test]
-fn a_loop_against_a_plc_answering_after_twice_the_timeout_keeps_ticking_and_stops_cleanly() {
-    let rig = Rig::new("").with_plant_port(bad_plc(BadPlc::Late(Duration::from_millis(600)), None));
-    let service = rig.service();
-    std::thread::sleep(Duration::from_secs(2));
-    let before = rig.status().unwrap()["ticks"].as_u64().unwrap();
-    std::thread::sleep(Duration::from_secs(1));
-    let after = rig.status().unwrap()["ticks"].as_u64().unwrap();
-    assert!(after > before, "the loop keeps ticking through timeouts ({before} -> {after})");
-    let stopping = Instant::now();
-    assert_eq!(service.terminate(), Some(0));
-    assert!(stopping.elapsed() < Duration::from_secs(10), "stopped in {:?}", stopping.elapsed());
+fn a_loop_against_a_plc_answering_busy_from_the_start_trips_and_no_task_gets_stuck() {
+    trips_before_it_could_start(BadPlc::Busy, "answering busy (0x06)");
+}
+
+#[test]
+fn a_loop_against_a_plc_answering_after_twice_the_timeout_from_the_start_trips_and_stops_cleanly() {
+    trips_before_it_could_start(
+        BadPlc::Late(Duration::from_millis(600)),
+        "answering after twice the timeout",
+    );
+}
+
+#[test]
+fn a_link_cut_trips_a_loop_with_a_permit_too_and_safe_lands_once_the_plc_permits_again() {
+    let permit = "\n[tags.enable]\nlink = \"plc\"\nholding_register = 300\ntype = \"f32\"\n";
+    let rig = Rig::new("permit = \"enable\"").with_tables(permit);
+    let mut sim = rig.sim();
+    let _service = rig.service();
+    wait_until("the loop is writing", Duration::from_secs(20), || rig.setpoint().is_some_and(|v| v != 2.0));
+    sim.stop();
+    // The permit is on the cut link too: it stands for stale_after_s, then is withheld,
+    // and the trip is remembered (and recorded) without permission.
+    wait_until("the trip is recorded", Duration::from_secs(10), || {
+        rig.status().is_some_and(|s| s["fallback_reason"] == "stale")
+    });
+    assert!(events(&rig).iter().any(|e| e["kind"] == "tripped" && e["detail"]["trip"] == "stale"));
+    let _sim = rig.sim();
+    time_until("safe is in the register", Duration::from_secs(5), || rig.setpoint() == Some(1.0));
+    assert_eq!(state(&rig), "fallback");
 }
 
 /// A running loop whose PLC starts misbehaving on the same port trips on the stale

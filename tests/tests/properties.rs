@@ -131,7 +131,7 @@ mod states {
 
     use proptest::prelude::*;
     use ridgeline::config::{Mode, Range, Recover};
-    use ridgeline::supervisor::control::{Control, Reading};
+    use ridgeline::supervisor::control::{Control, Permit, Reading};
     use ridgeline::supervisor::states::{Event, Machine, State, Trip};
 
     fn mode() -> impl Strategy<Value = Mode> {
@@ -178,13 +178,23 @@ mod states {
                 if !m.permitted && matches!(m.mode, Mode::Seeking | Mode::Holding) {
                     prop_assert!(!m.state.writes(), "{m:?}");
                 }
+                if m.tripped.is_some() {
+                    prop_assert!(matches!(m.state, State::Fallback | State::NoPermit), "{m:?}");
+                }
             }
         }
     }
 
     #[derive(Debug, Clone)]
     enum Step {
-        Tick { objective: Option<f64>, permit: Option<bool>, dt: f64, writes_ok: bool },
+        Tick {
+            objective: Option<f64>,
+            permit: Permit,
+            dt: f64,
+            writes_ok: bool,
+        },
+        /// The loop gets its starting point (until then it may only trip and write `safe`).
+        Start(f64),
         Ask(Mode),
         Bounds(f64, f64),
         ReadBack(f64),
@@ -197,11 +207,22 @@ mod states {
             1 => Just(None),
         ];
         prop_oneof![
-            8 => (objective, prop::option::of(any::<bool>()), 0.0..3.0f64, prop::bool::weighted(0.9))
+            8 => (objective, permit(), 0.0..3.0f64, prop::bool::weighted(0.9))
                 .prop_map(|(objective, permit, dt, writes_ok)| Step::Tick { objective, permit, dt, writes_ok }),
             1 => mode().prop_map(Step::Ask),
             1 => (0.0..6.0f64, 0.0..6.0f64).prop_map(|(a, b)| Step::Bounds(a.min(b), a.max(b))),
             1 => (-1.0..7.0f64).prop_map(Step::ReadBack),
+            1 => (1.0..5.0f64).prop_map(Step::Start),
+        ]
+    }
+
+    fn permit() -> impl Strategy<Value = Permit> {
+        prop_oneof![
+            4 => Just(Permit::NotConfigured),
+            4 => Just(Permit::Reads(1.0)),
+            1 => Just(Permit::Reads(0.0)),
+            1 => Just(Permit::Reads(f64::NAN)),
+            1 => Just(Permit::Unreadable),
         ]
     }
 
@@ -230,7 +251,6 @@ mod states {
             let mut c = Control::new(&config(if hold { "hold" } else { "safe" }, recover));
             let (mut now, mut tick) = (0.0, 0u64);
             let mut bounds = Range { min: 1.0, max: 5.0 };
-            c.start(now, &[3.0]);
             for s in steps {
                 match s {
                     Step::Tick { objective, permit, dt, writes_ok } => {
@@ -242,7 +262,12 @@ mod states {
                             let v = c.applied()[0];
                             prop_assert!(v.is_finite() && bounds.contains(v), "wrote {v} outside {bounds} in {:?}", c.state());
                             prop_assert!(c.state().writes());
-                            c.note_writes(writes_ok, now);
+                            c.note_setpoints(writes_ok, now);
+                        }
+                    }
+                    Step::Start(v) => {
+                        if !c.is_started() {
+                            c.start(now, &[v.clamp(bounds.min, bounds.max)]);
                         }
                     }
                     Step::Ask(m) => { let _ = c.ask(m); }
@@ -256,6 +281,10 @@ mod states {
                             c.restart_from(&[Some(v)]);
                         }
                     }
+                }
+                // What a stopping service would write stays inside the bounds too.
+                if let Some(values) = c.shutdown_values() {
+                    prop_assert!(values.iter().all(|&v| v.is_finite() && bounds.contains(v)), "{values:?} outside {bounds}");
                 }
             }
         }

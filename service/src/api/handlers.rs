@@ -251,6 +251,6 @@ pub async fn events(
     Ok(Json(rows.iter().map(event_json).collect()))
 }
 
-fn event_json(e: &EventRow) -> Value {
-    json!({"id": e.id, "at": rfc3339(e.at_ms), "loop": e.loop_name, "kind": e.kind, "detail": e.detail, "actor": e.actor})
+fn event_json(EventRow { id, event: e }: &EventRow) -> Value {
+    json!({"id": id, "at": rfc3339(e.at_ms), "loop": e.loop_name, "kind": e.kind, "detail": e.detail, "actor": e.actor})
 }

@@ -36,7 +36,7 @@ impl Links {
             match &link.kind {
                 LinkKind::ModbusTcp { address, unit } => {
                     let m = ModbusLink::reporting_to(&link.name, address, *unit, timeout, reporting.clone())
-                        .with_backoff_cap(fastest_tick(config, &link.name));
+                        .with_backoff_cap(backoff_cap(config, &link.name));
                     links.modbus.insert(link.name.clone(), m);
                 }
                 LinkKind::HttpGet { url } => {
@@ -60,16 +60,17 @@ impl Links {
     }
 }
 
-/// The shortest tick of the loops that use a link: its reconnection backoff is capped
-/// there, so a loop retries its link (and its fallback write) every tick.
-fn fastest_tick(config: &Config, link: &str) -> Duration {
+/// A link's reconnection backoff is capped at half the shortest tick of the loops that
+/// use it, so a loop retries its link (and its fallback write) on every tick, not every
+/// other one when a tick comes a little before the backoff ends.
+fn backoff_cap(config: &Config, link: &str) -> Duration {
     let uses = |l: &crate::config::LoopConfig| {
         l.objective.names().iter().chain(&l.permit).any(|t| config.tag(t).is_some_and(|t| t.link == link))
             || l.inputs.iter().any(|i| i.write.link == link)
             || l.heartbeat.as_ref().is_some_and(|h| h.link == link)
     };
     let fastest = config.loops.iter().filter(|l| uses(l)).map(|l| l.tick_s).fold(f64::INFINITY, f64::min);
-    if fastest.is_finite() { Duration::from_secs_f64(fastest) } else { modbus::BACKOFF_CAP }
+    if fastest.is_finite() { Duration::from_secs_f64(fastest / 2.0) } else { modbus::BACKOFF_CAP }
 }
 
 /// One value to read from registers, and where its value goes.
@@ -196,32 +197,49 @@ impl LoopIo {
         LoopIo { groups, writes, heartbeat }
     }
 
-    /// Reads every tag into `values` (in the order given to `new`).
-    pub async fn read(&self, values: &mut [f64]) -> Result<(), LinkError> {
+    /// Reads every tag into `values` (in the order given to `new`): `None` where its read
+    /// failed. Every link is tried, so a tag on a healthy link is read even when another
+    /// link is down; the first error is returned.
+    pub async fn read(&self, values: &mut [Option<f64>]) -> Result<(), LinkError> {
+        let mut first_error = None;
+        let mut failed = |e: LinkError| {
+            first_error.get_or_insert(e);
+        };
         for group in &self.groups {
             match group {
                 ReadGroup::Modbus { link, blocks } => {
                     for block in blocks {
-                        let words = link.read(block.space, block.start, block.count).await?;
+                        let words = link.read(block.space, block.start, block.count).await;
                         for m in &block.members {
                             let at = usize::from(m.address - block.start);
                             let width = usize::from(m.codec.kind.width());
-                            values[m.slot] = match words.get(at..at + width) {
-                                Some(w) => codec::decode(&m.codec, w),
-                                None => f64::NAN,
+                            values[m.slot] = match &words {
+                                Ok(words) => Some(
+                                    words
+                                        .get(at..at + width)
+                                        .map_or(f64::NAN, |w| codec::decode(&m.codec, w)),
+                                ),
+                                Err(_) => None,
                             };
+                        }
+                        if let Err(e) = words {
+                            failed(e);
                         }
                     }
                 }
                 ReadGroup::Http { link, tags } => {
-                    let document = link.fetch().await?;
+                    let document = link.fetch().await;
                     for t in tags {
-                        values[t.slot] = link.number(&document, &t.tag, &t.pointer)?;
+                        let value = match &document {
+                            Ok(document) => link.number(document, &t.tag, &t.pointer),
+                            Err(e) => Err(e.clone()),
+                        };
+                        values[t.slot] = value.map_err(&mut failed).ok();
                     }
                 }
             }
         }
-        Ok(())
+        first_error.map_or(Ok(()), Err)
     }
 
     /// Writes input `input`'s setpoint, refusing values its register type cannot hold and

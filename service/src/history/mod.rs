@@ -116,15 +116,11 @@ pub struct InputValues {
     pub gradient: Option<f64>,
 }
 
-/// A stored event.
+/// A stored event: the event and its id in history.
 #[derive(Debug, Clone, PartialEq)]
 pub struct EventRow {
     pub id: i64,
-    pub at_ms: i64,
-    pub loop_name: Option<String>,
-    pub kind: String,
-    pub detail: serde_json::Value,
-    pub actor: String,
+    pub event: EventRecord,
 }
 
 /// The last finite estimate stored for one input of a loop.
@@ -348,14 +344,14 @@ fn event_row(r: &SqliteRow) -> Result<EventRow, HistoryError> {
     let detail: &str = r.try_get(4)?;
     let detail = serde_json::from_str(detail)
         .map_err(|e| HistoryError::Corrupt(format!("the detail of event {id}: {e}")))?;
-    Ok(EventRow {
-        id,
+    let event = EventRecord {
         at_ms: r.try_get(1)?,
         loop_name: r.try_get(2)?,
         kind: r.try_get(3)?,
         detail,
         actor: r.try_get(5)?,
-    })
+    };
+    Ok(EventRow { id, event })
 }
 
 /// The `inputs` column read straight into a list, keeping the stored order.

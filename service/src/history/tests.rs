@@ -209,7 +209,7 @@ async fn events_come_back_newest_first_filtered_by_loop_and_since_with_detail_an
     sender.event(event(4000, Some("boiler"), "recovery", "system"));
     assert_eq!(writer.step().await.unwrap().unwrap(), Written { samples: 0, events: 5 });
 
-    let kinds = |rows: &[EventRow]| rows.iter().map(|r| r.kind.clone()).collect::<Vec<_>>();
+    let kinds = |rows: &[EventRow]| rows.iter().map(|r| r.event.kind.clone()).collect::<Vec<_>>();
     assert_eq!(
         kinds(&history.events(None, None, 100).await.unwrap()),
         ["recovery", "trip", "bounds", "mode", "start"]
@@ -222,7 +222,7 @@ async fn events_come_back_newest_first_filtered_by_loop_and_since_with_detail_an
     assert_eq!(kinds(&history.events(None, Some(2000), 2).await.unwrap()), ["recovery", "trip"]);
     assert!(history.events(Some("nobody"), None, 100).await.unwrap().is_empty());
 
-    let mode = history.events(Some("boiler"), None, 100).await.unwrap().pop().unwrap();
+    let mode = history.events(Some("boiler"), None, 100).await.unwrap().pop().unwrap().event;
     assert_eq!((mode.at_ms, mode.loop_name.as_deref(), mode.actor.as_str()), (2000, Some("boiler"), "alice"));
     assert_eq!(
         mode.detail,
@@ -234,7 +234,7 @@ async fn events_come_back_newest_first_filtered_by_loop_and_since_with_detail_an
         r#"{"from":"observing","to":"seeking","bounds":{"min":1.1,"max":1.4}}"#
     );
     let start = history.events(None, None, 100).await.unwrap().pop().unwrap();
-    assert_eq!((start.loop_name, start.id), (None, 1));
+    assert_eq!((start.event.loop_name, start.id), (None, 1));
 }
 
 #[tokio::test]

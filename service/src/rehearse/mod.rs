@@ -22,7 +22,7 @@ use anyhow::Context;
 use crate::config::{Config, FileProblems, LoopConfig, Mode, Problem, Range};
 use crate::seek::guard::ObjectiveFault;
 use crate::sim::{Plant, PlantSpec};
-use crate::supervisor::control::{Cause, Control, Reading, Transition};
+use crate::supervisor::control::{Cause, Control, Permit, Reading, Transition};
 use plot::{InputTrace, LoopTrace};
 pub use report::{Event, FinalInput, LoopReport, Report, human_duration};
 pub use truth::Truth;
@@ -199,7 +199,11 @@ impl LoopRun {
 
     fn tick(&mut self, t: f64, duration: f64, plant: &mut Plant) -> anyhow::Result<()> {
         self.truth.read_tags(plant, &mut self.tag_values);
-        let report = self.control.tick(self.tick, t, Reading { tags: Some(&self.tag_values), permit: None });
+        let report = self.control.tick(
+            self.tick,
+            t,
+            Reading { tags: Some(&self.tag_values), permit: Permit::NotConfigured },
+        );
         let measured = report.objective.unwrap_or(f64::NAN);
         if let Some(fault) = report.fault {
             self.stats.fault(t, fault, measured);
@@ -208,7 +212,7 @@ impl LoopRun {
             for (&value, &pi) in self.control.applied().iter().zip(self.truth.plant_inputs()) {
                 plant.set_input(pi, value);
             }
-            self.control.note_writes(true, t);
+            self.control.note_setpoints(true, t);
         }
         for transition in self.control.take_transitions() {
             self.stats.transition(t, transition);

@@ -15,9 +15,19 @@ pub use super::states::{State, Trip};
 pub struct Reading<'a> {
     /// The objective's tags in the objective's name order; `None` when the read failed.
     pub tags: Option<&'a [f64]>,
-    /// The permit: `None` when the loop has none, else whether it reads non-zero (a
-    /// permit that cannot be read withholds permission).
-    pub permit: Option<bool>,
+    pub permit: Permit,
+}
+
+/// The PLC's permission to write, as read at a tick.
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub enum Permit {
+    /// The loop has no permit tag: it may always write.
+    NotConfigured,
+    /// The permit tag's value: permission while it is finite and not zero.
+    Reads(f64),
+    /// The permit tag could not be read. The last value read stands for `stale_after_s`;
+    /// after that, permission is withheld.
+    Unreadable,
 }
 
 /// Why the state changed.
@@ -28,8 +38,10 @@ pub enum Cause {
     Recovered,
     PermitWithdrawn,
     PermitGranted,
-    /// An operator asked for a mode (from fallback: the acknowledgement).
+    /// An operator asked for a mode.
     Asked(Mode),
+    /// An operator asked for a mode once the fault had cleared, which ended the trip.
+    Acknowledged(Mode),
 }
 
 impl Cause {
@@ -40,6 +52,7 @@ impl Cause {
             Cause::PermitWithdrawn => "the PLC withdrew permission".into(),
             Cause::PermitGranted => "the PLC granted permission".into(),
             Cause::Asked(m) => format!("{m} asked for"),
+            Cause::Acknowledged(m) => format!("{m} asked for once the fault had cleared"),
         }
     }
 }
@@ -86,7 +99,10 @@ pub struct Control {
     restart_filters: bool,
     objective_value: Option<f64>,
     last_read_s: f64,
-    /// Since when setpoint writes have been failing.
+    /// When the permit tag was last read.
+    permit_read_s: f64,
+    /// Since when the setpoint registers have been failing (writes, or the read-back a
+    /// start waits for), while the loop means to write.
     failing_since_s: Option<f64>,
     healthy_since_s: Option<f64>,
     fault: Option<Trip>,
@@ -116,6 +132,7 @@ impl Control {
             restart_filters: true,
             objective_value: None,
             last_read_s: 0.0,
+            permit_read_s: 0.0,
             failing_since_s: None,
             healthy_since_s: None,
             fault: None,
@@ -185,20 +202,21 @@ impl Control {
 
     fn handle(&mut self, event: Event, cause: Cause) -> Result<(), StillFaulty> {
         let from = self.machine.state;
+        let tripped_before = self.machine.tripped;
         let effect = self.machine.on(event, self.fault)?;
-        match effect {
-            Effect::Recover | Effect::Restart => {
-                self.wants_read_back = true;
-                self.restart_filters = true;
+        let cause = match (effect, cause) {
+            // A trip is recorded as such also when it only latches (without permission).
+            (Effect::Latch(trip), _) => Cause::Tripped(trip),
+            (_, Cause::Asked(mode)) if tripped_before.is_some() && self.machine.tripped.is_none() => {
+                Cause::Acknowledged(mode)
             }
-            Effect::Latch(_) | Effect::None => {}
+            _ => cause,
+        };
+        if matches!(effect, Effect::Recover | Effect::Restart) {
+            self.wants_read_back = true;
+            self.restart_filters = true;
         }
-        if self.machine.state != from {
-            // A trip's cause is the fault itself, also when it was remembered from no_permit.
-            let cause = match (self.machine.state, self.machine.tripped) {
-                (State::Fallback, Some(trip)) if !matches!(cause, Cause::Asked(_)) => Cause::Tripped(trip),
-                _ => cause,
-            };
+        if self.machine.state != from || self.machine.tripped != tripped_before {
             self.transitions.push(Transition { from, to: self.machine.state, cause });
             if self.machine.state != State::Seeking {
                 self.restart_filters = true;
@@ -207,7 +225,23 @@ impl Control {
         Ok(())
     }
 
-    /// One tick at tick index `tick` and time `now_s` (seconds, any origin).
+    /// Whether the PLC permits writing at `now_s`, when the loop has a permit tag.
+    fn permit_at(&mut self, now_s: f64, permit: Permit) -> Option<bool> {
+        match permit {
+            Permit::NotConfigured => None,
+            Permit::Reads(v) => {
+                self.permit_read_s = now_s;
+                Some(v.is_finite() && v != 0.0)
+            }
+            Permit::Unreadable => {
+                Some(self.machine.permitted && now_s - self.permit_read_s < self.stale_after_s)
+            }
+        }
+    }
+
+    /// One tick at tick index `tick` and time `now_s` (seconds, any origin). The watchdog
+    /// runs from the first tick, also while the loop waits to start: a loop that cannot
+    /// read its objective or its setpoints trips like a running one.
     pub fn tick(&mut self, tick: u64, now_s: f64, reading: Reading<'_>) -> TickReport {
         self.ticks += 1;
         let objective = reading.tags.map(|values| self.objective.eval(values));
@@ -225,11 +259,8 @@ impl Control {
             fault: checked.err().flatten(),
             guard: GuardActions::default(),
         };
-        if !self.started {
-            return quiet;
-        }
         self.fault = self.fault_at(now_s, objective);
-        if let Some(permitted) = reading.permit
+        if let Some(permitted) = self.permit_at(now_s, reading.permit)
             && permitted != self.machine.permitted
         {
             let (event, cause) = if permitted {
@@ -245,20 +276,27 @@ impl Control {
                 self.healthy_since_s = None;
                 let _ = self.handle(Event::Fault(trip), Cause::Tripped(trip));
             }
+            // Only a tick that read and wrote what it should counts towards recovery.
+            None if reading.tags.is_none() || self.failing_since_s.is_some() => self.healthy_since_s = None,
             None => {
                 let since = *self.healthy_since_s.get_or_insert(now_s);
                 let _ = self.handle(Event::Healthy { healthy_s: now_s - since }, Cause::Recovered);
             }
         }
         let state = self.machine.state;
-        let waiting = self.wants_read_back && state.writes();
+        if !state.writes() {
+            // Failures of a loop that no longer writes say nothing about its next writes.
+            self.failing_since_s = None;
+        }
+        let waiting = !self.started || (self.wants_read_back && state.writes());
         let report = match (state, checked) {
             (State::Stopped | State::NoPermit, _) => quiet,
+            // The fallback is written while waiting too: it needs no starting point.
+            (State::Fallback, _) => match self.fallback() {
+                Some(guard) => TickReport { write: true, guard, ..quiet },
+                None => quiet,
+            },
             (_, _) if waiting => quiet,
-            (State::Fallback, _) => {
-                let guard = self.fallback();
-                TickReport { write: true, guard, ..quiet }
-            }
             (State::Holding, _) => TickReport { write: true, guard: self.seeker.hold(), ..quiet },
             (State::Seeking | State::Observing, Ok(j)) => {
                 if std::mem::take(&mut self.restart_filters) {
@@ -280,18 +318,24 @@ impl Control {
         report
     }
 
-    /// The fallback setpoints: `safe`, or the estimate held, each inside the bounds.
-    fn fallback(&mut self) -> GuardActions {
-        let guard = match self.on_trip {
+    /// Sets the fallback setpoints (`safe`, or the estimate held, each inside the bounds);
+    /// `None` when there is nothing to write: a loop that holds but never started has no
+    /// estimate to hold.
+    fn fallback(&mut self) -> Option<GuardActions> {
+        let values = self.fallback_values()?;
+        self.applied = values;
+        Some(match self.on_trip {
             OnTrip::Hold => self.seeker.hold(),
             OnTrip::Safe => GuardActions::default(),
-        };
-        self.applied = self.fallback_values();
-        guard
+        })
     }
 
-    fn fallback_values(&self) -> Vec<f64> {
-        self.seeker
+    fn fallback_values(&self) -> Option<Vec<f64>> {
+        if self.on_trip == OnTrip::Hold && !self.started {
+            return None;
+        }
+        let values = self
+            .seeker
             .inputs()
             .iter()
             .zip(&self.safe)
@@ -299,7 +343,8 @@ impl Control {
                 OnTrip::Safe => input.guard.clamp(safe),
                 OnTrip::Hold => input.guard.clamp(input.estimate),
             })
-            .collect()
+            .collect();
+        Some(values)
     }
 
     /// Whether `safe` lies outside an input's current bounds (fallback then writes the
@@ -308,8 +353,9 @@ impl Control {
         self.seeker.inputs().iter().zip(&self.safe).map(|(i, &s)| !i.guard.bounds.contains(s)).collect()
     }
 
-    /// Tells the watchdog how this tick's writes went.
-    pub fn note_writes(&mut self, all_ok: bool, now_s: f64) {
+    /// Tells the watchdog whether the setpoint registers answered this tick: the writes,
+    /// or the read-back that a start or a restart waits for.
+    pub fn note_setpoints(&mut self, all_ok: bool, now_s: f64) {
         if all_ok {
             self.failing_since_s = None;
         } else {
@@ -337,7 +383,10 @@ impl Control {
                 (Some(j), Some(r)) => format!("the objective {j} is outside its plausible range {r}"),
                 _ => "the objective is outside its plausible range".into(),
             },
-            Trip::WriteFailed => format!("setpoint writes have failed for {} s or more", self.stale_after_s),
+            Trip::WriteFailed => format!(
+                "the setpoint registers have not taken a write (or answered a read-back) for {} s or more",
+                self.stale_after_s
+            ),
         }
     }
 
@@ -398,11 +447,11 @@ impl Control {
     /// estimates without dither or `safe` (each inside its bounds); `None` for a loop that
     /// is not writing.
     pub fn shutdown_values(&self) -> Option<Vec<f64>> {
+        if self.machine.state == State::Fallback {
+            return self.fallback_values();
+        }
         if !self.started || !self.machine.state.writes() {
             return None;
-        }
-        if self.machine.state == State::Fallback {
-            return Some(self.fallback_values());
         }
         Some(
             self.seeker
@@ -435,7 +484,7 @@ mod tests {
     }
 
     fn good(values: &[f64]) -> Reading<'_> {
-        Reading { tags: Some(values), permit: None }
+        Reading { tags: Some(values), permit: Permit::NotConfigured }
     }
 
     #[test]
@@ -467,11 +516,11 @@ mod tests {
         c.start(0.0, &[3.0]);
         c.tick(0, 0.0, good(&[10.0]));
         for n in 1..5 {
-            let r = c.tick(n, n as f64, Reading { tags: None, permit: None });
+            let r = c.tick(n, n as f64, Reading { tags: None, permit: Permit::NotConfigured });
             assert_eq!(c.state(), State::Seeking, "tick {n}");
             assert!(r.write);
         }
-        let r = c.tick(5, 5.0, Reading { tags: None, permit: None });
+        let r = c.tick(5, 5.0, Reading { tags: None, permit: Permit::NotConfigured });
         assert_eq!(c.state(), State::Fallback);
         assert_eq!(c.tripped(), Some(Trip::Stale));
         assert!(r.write);
@@ -537,11 +586,11 @@ mod tests {
         let mut c = Control::new(&config("seeking", ""));
         c.start(0.0, &[3.0]);
         for n in 0..5 {
-            let r = c.tick(n, n as f64, Reading { tags: Some(&[10.0]), permit: Some(false) });
+            let r = c.tick(n, n as f64, Reading { tags: Some(&[10.0]), permit: Permit::Reads(0.0) });
             assert!(!r.write);
             assert_eq!(c.state(), State::NoPermit);
         }
-        c.tick(5, 5.0, Reading { tags: Some(&[10.0]), permit: Some(true) });
+        c.tick(5, 5.0, Reading { tags: Some(&[10.0]), permit: Permit::Reads(1.0) });
         assert_eq!(c.state(), State::Seeking);
         assert!(c.wants_read_back());
     }
@@ -552,7 +601,7 @@ mod tests {
         c.start(0.0, &[3.0]);
         for n in 0..6 {
             c.tick(n, n as f64, good(&[10.0]));
-            c.note_writes(false, n as f64);
+            c.note_setpoints(false, n as f64);
         }
         assert_eq!(c.tripped(), Some(Trip::WriteFailed));
     }
@@ -565,6 +614,123 @@ mod tests {
         c.tick(0, 0.0, good(&[f64::NAN]));
         assert_eq!(c.applied(), &[2.5]);
         assert_eq!(c.safe_outside_bounds(), vec![true]);
+    }
+
+    #[test]
+    fn a_loop_that_cannot_start_trips_like_a_running_one_and_writes_safe_while_it_waits() {
+        let mut c = Control::new(&config("seeking", ""));
+        for n in 0..5 {
+            assert!(!c.tick(n, n as f64, Reading { tags: None, permit: Permit::NotConfigured }).write);
+        }
+        let r = c.tick(5, 5.0, Reading { tags: None, permit: Permit::NotConfigured });
+        assert_eq!((c.state(), c.tripped()), (State::Fallback, Some(Trip::Stale)));
+        assert!(r.write, "safe is written (and retried) before any starting point is known");
+        assert_eq!(c.applied(), &[2.0]);
+        assert_eq!(c.shutdown_values(), Some(vec![2.0]));
+
+        let mut c = Control::new(&config("seeking", "on_trip = \"hold\""));
+        let r = c.tick(5, 5.0, Reading { tags: None, permit: Permit::NotConfigured });
+        assert_eq!(c.state(), State::Fallback);
+        assert!(!r.write, "a loop that never started has no estimate to hold");
+        assert_eq!(c.shutdown_values(), None);
+    }
+
+    #[test]
+    fn setpoints_that_cannot_be_read_back_trip_with_write_failed() {
+        let mut c = Control::new(&config("seeking", ""));
+        for n in 0..6 {
+            c.note_setpoints(false, n as f64);
+            c.tick(n, n as f64, good(&[10.0]));
+        }
+        assert_eq!(c.tripped(), Some(Trip::WriteFailed));
+        assert!(c.ask(Mode::Seeking).unwrap_err().0.contains("read-back"));
+    }
+
+    #[test]
+    fn a_loop_that_stopped_writing_does_not_trip_on_its_old_write_failures() {
+        let mut c = Control::new(&config("seeking", ""));
+        c.start(0.0, &[3.0]);
+        c.tick(0, 0.0, good(&[10.0]));
+        c.note_setpoints(false, 0.0);
+        c.ask(Mode::Observing).unwrap();
+        for n in 1..20 {
+            c.tick(n, n as f64, good(&[10.0]));
+        }
+        c.ask(Mode::Seeking).unwrap();
+        c.tick(20, 20.0, good(&[10.0]));
+        assert_eq!(c.state(), State::Seeking);
+    }
+
+    #[test]
+    fn an_unreadable_permit_stands_for_stale_after_s_and_a_nan_permit_withholds() {
+        let mut c = Control::new(&config("seeking", ""));
+        c.start(0.0, &[3.0]);
+        c.tick(0, 0.0, Reading { tags: Some(&[10.0]), permit: Permit::Reads(1.0) });
+        for n in 1..5 {
+            c.tick(n, n as f64, Reading { tags: Some(&[10.0]), permit: Permit::Unreadable });
+            assert_eq!(c.state(), State::Seeking, "tick {n}");
+        }
+        c.tick(5, 5.0, Reading { tags: Some(&[10.0]), permit: Permit::Unreadable });
+        assert_eq!(c.state(), State::NoPermit);
+        c.tick(6, 6.0, Reading { tags: Some(&[10.0]), permit: Permit::Reads(1.0) });
+        assert_eq!(c.state(), State::Seeking);
+        c.tick(7, 7.0, Reading { tags: Some(&[10.0]), permit: Permit::Reads(f64::NAN) });
+        assert_eq!(c.state(), State::NoPermit);
+    }
+
+    #[test]
+    fn an_objective_that_cannot_be_read_trips_while_the_permit_reads_fine() {
+        let mut c = Control::new(&config("seeking", ""));
+        c.start(0.0, &[3.0]);
+        for n in 0..=5 {
+            c.tick(n, n as f64, Reading { tags: None, permit: Permit::Reads(1.0) });
+        }
+        assert_eq!((c.state(), c.tripped()), (State::Fallback, Some(Trip::Stale)));
+        assert!(c.permitted());
+    }
+
+    #[test]
+    fn a_trip_without_permission_is_recorded_once_and_permission_back_lands_in_fallback() {
+        let mut c = Control::new(&config("seeking", ""));
+        c.start(0.0, &[3.0]);
+        c.tick(0, 0.0, Reading { tags: Some(&[10.0]), permit: Permit::Reads(0.0) });
+        c.tick(1, 1.0, Reading { tags: Some(&[500.0]), permit: Permit::Reads(0.0) });
+        c.tick(2, 2.0, Reading { tags: Some(&[500.0]), permit: Permit::Reads(1.0) });
+        let causes: Vec<_> = c.take_transitions().iter().map(|t| (t.from, t.to, t.cause)).collect();
+        assert_eq!(
+            causes,
+            [
+                (State::Seeking, State::NoPermit, Cause::PermitWithdrawn),
+                (State::NoPermit, State::NoPermit, Cause::Tripped(Trip::OutOfRange)),
+                (State::NoPermit, State::Fallback, Cause::PermitGranted),
+            ]
+        );
+    }
+
+    #[test]
+    fn acknowledging_a_trip_without_permission_is_recorded() {
+        let mut c = Control::new(&config("seeking", ""));
+        c.start(0.0, &[3.0]);
+        c.tick(0, 0.0, Reading { tags: Some(&[500.0]), permit: Permit::Reads(0.0) });
+        c.tick(1, 1.0, Reading { tags: Some(&[50.0]), permit: Permit::Reads(0.0) });
+        c.take_transitions();
+        c.ask(Mode::Seeking).unwrap();
+        assert_eq!(c.tripped(), None);
+        let t = c.take_transitions();
+        assert_eq!(t.len(), 1);
+        assert_eq!(t[0].cause, Cause::Acknowledged(Mode::Seeking));
+    }
+
+    #[test]
+    fn the_healthy_interval_starts_again_after_a_failed_read() {
+        let mut c = Control::new(&config("holding", "recover = \"auto\"\nrecover_after_s = 10"));
+        c.start(0.0, &[3.0]);
+        c.tick(0, 0.0, good(&[500.0]));
+        for n in 1..20 {
+            let tags = if n == 8 { None } else { Some(&[50.0][..]) };
+            c.tick(n, n as f64, Reading { tags, permit: Permit::NotConfigured });
+            assert_eq!(c.state(), if n < 19 { State::Fallback } else { State::Holding }, "tick {n}");
+        }
     }
 
     #[test]

@@ -8,7 +8,7 @@ use tokio::sync::{mpsc, oneshot, watch};
 use tokio::time::{Instant, MissedTickBehavior};
 use tokio_util::sync::CancellationToken;
 
-use super::control::{Cause, Control, Reading, State, TickReport};
+use super::control::{Cause, Control, Permit, Reading, State, TickReport};
 use super::status::{InputStatus, LoopStatus};
 use crate::config::{Config, LoopConfig, Mode, OnTrip, Range};
 use crate::field::{LinkError, Links, LoopIo, Urgency};
@@ -83,8 +83,11 @@ pub struct LoopTask {
     input_names: Vec<Arc<str>>,
     control: Control,
     io: LoopIo,
-    /// The objective's tags, then the permit tag when there is one.
-    values: Vec<f64>,
+    /// The objective's tags, then the permit tag when there is one; `None` where the
+    /// last read failed.
+    values: Vec<Option<f64>>,
+    /// The objective's tags of a read that got them all.
+    objective_values: Vec<f64>,
     has_permit: bool,
     status: watch::Sender<LoopStatus>,
     commands: mpsc::Receiver<Command>,
@@ -120,7 +123,8 @@ impl LoopTask {
         let (status, receiver) = watch::channel(LoopStatus::initial(&loop_config));
         let (commands_in, commands) = mpsc::channel(16);
         let task = LoopTask {
-            values: vec![f64::NAN; tags.len()],
+            values: vec![None; tags.len()],
+            objective_values: Vec::with_capacity(tags.len()),
             has_permit: loop_config.permit.is_some(),
             write_failing: vec![false; loop_config.inputs.len()],
             name: Arc::from(loop_config.name.as_str()),
@@ -179,17 +183,24 @@ impl LoopTask {
         }
         let read = self.io.read(&mut self.values).await;
         self.note_read(&read);
-        if read.is_ok() {
+        let (objective_tags, permit_tag) = self.values.split_at(self.control.objective_names().len());
+        self.objective_values.clear();
+        self.objective_values.extend(objective_tags.iter().map_while(|v| *v));
+        let tags_read = self.objective_values.len() == objective_tags.len();
+        if tags_read {
             self.objective_at = Some(now_ms());
         }
-        let objective_tags = self.control.objective_names().len();
-        let permit = self.has_permit.then(|| read.is_ok() && self.values[objective_tags] != 0.0);
-        let tags = read.is_ok().then(|| &self.values[..objective_tags]);
+        let permit = match (self.has_permit, permit_tag.first()) {
+            (false, _) => Permit::NotConfigured,
+            (true, Some(Some(v))) => Permit::Reads(*v),
+            (true, _) => Permit::Unreadable,
+        };
+        let tags = tags_read.then_some(&self.objective_values[..]);
         let now_s = self.now_s();
         let report = self.control.tick(n, now_s, Reading { tags, permit });
         if report.write {
             let all_ok = self.write_applied().await;
-            self.control.note_writes(all_ok, now_s);
+            self.control.note_setpoints(all_ok, now_s);
         }
         if self.config.heartbeat.is_some() && self.control.is_started() {
             // A failed heartbeat is a link error (counted and logged by the link), not a trip.
@@ -220,6 +231,7 @@ impl LoopTask {
             Ok(v) => v,
             Err(e) => {
                 tracing::debug!(r#loop = %self.name, error = %e, "setpoints not readable yet; start waits");
+                self.control.note_setpoints(false, self.now_s());
                 return;
             }
         };
@@ -279,7 +291,8 @@ impl LoopTask {
                 tracing::info!(r#loop = %self.name, read_back = ?read_back, "restarted from the setpoints in the PLC");
             }
             Err(e) => {
-                tracing::debug!(r#loop = %self.name, error = %e, "setpoints not readable yet; restart waits")
+                tracing::debug!(r#loop = %self.name, error = %e, "setpoints not readable yet; restart waits");
+                self.control.note_setpoints(false, self.now_s());
             }
         }
     }
@@ -295,6 +308,11 @@ impl LoopTask {
                     }
                     detail["trip"] = serde_json::json!(trip.as_str());
                     detail["on_trip"] = serde_json::json!(self.config.watchdog.on_trip.as_str());
+                    if t.to != State::Fallback {
+                        detail["note"] = serde_json::json!(
+                            "nothing is written without the PLC's permission; the fallback applies when it returns"
+                        );
+                    }
                     let outside = self.control.safe_outside_bounds();
                     let writes: serde_json::Map<_, _> = self
                         .config
@@ -315,8 +333,7 @@ impl LoopTask {
                     tracing::warn!(r#loop = %self.name, trip = trip.as_str(), detail = %detail, "loop tripped to fallback");
                     "tripped"
                 }
-                Cause::Recovered => "recovered",
-                Cause::Asked(_) if t.from == State::Fallback => "recovered",
+                Cause::Recovered | Cause::Acknowledged(_) => "recovered",
                 Cause::PermitWithdrawn => "permit_withdrawn",
                 Cause::PermitGranted => "permit_granted",
                 // The mode_changed event of the request says it all.
@@ -360,7 +377,7 @@ impl LoopTask {
         all_ok
     }
 
-    /// Writes the estimates without dither (when a loop stops writing, so no dither is
+    /// Writes the estimates without dither (when a loop stops seeking, so no dither is
     /// left behind in the PLC).
     async fn write_estimates(&mut self) {
         for i in 0..self.config.inputs.len() {
@@ -394,7 +411,7 @@ impl LoopTask {
         match command {
             Command::SetMode { mode, actor, reply } => {
                 let from = self.control.mode();
-                let was_writing = self.control.state().writes();
+                let was_seeking = self.control.state() == State::Seeking;
                 if let Err(refused) = self.control.ask(mode) {
                     let _ = reply.send(Err(CommandError::Conflict(format!(
                         "loop {} stays in fallback: {}",
@@ -402,7 +419,9 @@ impl LoopTask {
                     ))));
                     return;
                 }
-                if was_writing && !self.control.state().writes() && self.control.is_started() {
+                // A loop that stops seeking takes its dither out of the PLC. (Leaving holding
+                // leaves the estimate, leaving fallback the fallback value, where they are.)
+                if was_seeking && !self.control.state().writes() && self.control.is_started() {
                     self.write_estimates().await;
                 }
                 if from != mode {
@@ -485,7 +504,8 @@ impl LoopTask {
 
     fn publish(&self) {
         let c = &self.control;
-        // Before a loop has started there are no setpoints to show, only what it reads.
+        // Before a loop has started it has no estimates, only what it reads (and a
+        // fallback value, if it tripped meanwhile).
         let known = |v: f64| if c.is_started() { v } else { f64::NAN };
         let inputs = self
             .config
@@ -495,7 +515,7 @@ impl LoopTask {
             .zip(c.applied())
             .map(|((cfg, i), &applied)| InputStatus {
                 name: cfg.name.clone(),
-                applied: known(applied),
+                applied,
                 estimate: known(i.estimate),
                 gradient: known(i.gradient),
                 bounds: i.guard.bounds.into(),
@@ -527,9 +547,11 @@ impl LoopTask {
             if let Some(j) = report.objective {
                 m.objective.with_label_values(&[&*self.name]).set(j);
             }
-            if started {
-                for ((name, i), &applied) in self.input_names.iter().zip(c.inputs()).zip(c.applied()) {
+            for ((name, i), &applied) in self.input_names.iter().zip(c.inputs()).zip(c.applied()) {
+                if applied.is_finite() {
                     m.setpoint.with_label_values(&[&*self.name, name]).set(applied);
+                }
+                if started {
                     m.estimate.with_label_values(&[&*self.name, name]).set(i.estimate);
                     m.gradient.with_label_values(&[&*self.name, name]).set(i.gradient);
                 }
@@ -550,7 +572,7 @@ impl LoopTask {
                     .zip(c.applied())
                     .map(|((name, i), &applied)| InputSample {
                         name: name.clone(),
-                        applied: known(applied),
+                        applied,
                         estimate: known(i.estimate),
                         gradient: known(i.gradient),
                     })
