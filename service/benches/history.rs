@@ -89,6 +89,7 @@ fn records(rows: usize) -> Vec<SampleRecord> {
             let phase = (k / LOOPS) as f64 * 0.157;
             SampleRecord {
                 resumable: true,
+                tick: (k / LOOPS) as u64,
                 loop_name: names[k % LOOPS].clone(),
                 at_ms: start_ms + (k / LOOPS) as i64 * TICK_MS,
                 objective: Some(85.2087 + 0.0131 * phase.cos()),
@@ -113,7 +114,8 @@ fn records(rows: usize) -> Vec<SampleRecord> {
 }
 
 /// The writer as the service runs it, fed as fast as one task can send. The queue holds
-/// every row, so none is dropped: what is measured is how fast the writer drains it.
+/// every row twice over, so it never fills enough to thin them: what is measured is how
+/// fast the writer drains it.
 async fn writer(path: &Path, records: Vec<SampleRecord>) -> anyhow::Result<(Duration, u64)> {
     let text = std::fs::read_to_string(concat!(env!("CARGO_MANIFEST_DIR"), "/../config/demo.toml"))?;
     let config = ridgeline::config::parse(&text, "demo")
@@ -121,7 +123,7 @@ async fn writer(path: &Path, records: Vec<SampleRecord>) -> anyhow::Result<(Dura
     let metrics = Arc::new(Metrics::new(&config));
     let rows = records.len() as u64;
     let history = History::open(path).await?;
-    let settings = WriterSettings { queue_capacity: records.len(), retention_days: 36_500 };
+    let settings = WriterSettings { queue_capacity: 2 * records.len(), retention_days: 36_500 };
     let (sender, writer) = history.writer(settings, Some(metrics.clone()));
     let cancel = CancellationToken::new();
     let started = Instant::now();

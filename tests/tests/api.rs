@@ -59,10 +59,17 @@ const WRITES: &[(&str, &str)] = &[
     ("/api/v1/loops/bowl/inputs/u/bounds", r#"{"min": 0.5, "max": 5.5}"#),
 ];
 
+/// What a change may touch: the mode and the bounds.
+fn settings(rig: &Rig) -> (serde_json::Value, serde_json::Value) {
+    let status = call(rig, "GET", "/api/v1/loops/bowl", None, None).json();
+    (status["mode"].clone(), status["inputs"][0]["bounds"].clone())
+}
+
 #[test]
 fn every_write_route_needs_an_operator_token() {
     let r = running(true);
     for (path, body) in WRITES {
+        let before = settings(&r.rig);
         // Source: RFC 9110 §15.5.2 and §15.5.4 (401 without valid credentials, 403 when refused).
         assert_eq!(call(&r.rig, "PUT", path, None, Some(body)).status, 401, "{path} without a token");
         let unknown = call(&r.rig, "PUT", path, Some("not-a-known-token"), Some(body));
@@ -74,12 +81,21 @@ fn every_write_route_needs_an_operator_token() {
             403,
             "{path} with a viewer token"
         );
+        assert_eq!(settings(&r.rig), before, "{path}: a refused request changed the loop");
         let ok = call(&r.rig, "PUT", path, Some(OPERATOR), Some(body));
         assert_eq!(ok.status, 200, "{path} with an operator token: {}", ok.body);
     }
     let status = call(&r.rig, "GET", "/api/v1/loops/bowl", None, None).json();
     assert_eq!(status["mode"], "holding");
     assert_eq!(status["inputs"][0]["bounds"], serde_json::json!({"min": 0.5, "max": 5.5}));
+    // One event for each accepted change, none for the six refused requests.
+    std::thread::sleep(Duration::from_millis(500));
+    let changes: Vec<serde_json::Value> = events(&r.rig)
+        .into_iter()
+        .filter(|e| e["kind"] == "mode_changed" || e["kind"] == "bounds_changed")
+        .map(|e| e["actor"].clone())
+        .collect();
+    assert_eq!(changes, ["shift-script", "shift-script"]);
 }
 
 #[test]
@@ -141,10 +157,25 @@ fn refused_changes_leave_the_loop_and_the_history_unchanged() {
         ("/api/v1/loops/nope/inputs/u/bounds", r#"{"min": 1.0, "max": 5.0}"#, 404, "no loop `nope`"),
         ("/api/v1/loops/bowl/mode", r#"{"mode": "fallback"}"#, 400, "is not one of"),
         ("/api/v1/loops/bowl/mode", r#"{"mode": 1}"#, 400, "not valid"),
-        ("/api/v1/loops/bowl/mode", r#"{"mode": "seeking", "why": "x"}"#, 400, "unknown field"),
+        ("/api/v1/loops/bowl/mode", r#"{"mode": "holding", "why": "x"}"#, 400, "unknown field"),
         ("/api/v1/loops/bowl/mode", "not json", 400, "not valid"),
-        ("/api/v1/loops/nope/mode", r#"{"mode": "seeking"}"#, 404, "no loop `nope`"),
+        ("/api/v1/loops/nope/mode", r#"{"mode": "holding"}"#, 404, "no loop `nope`"),
     ];
+    // Valid changes with the wrong credentials are refused too.
+    let valid_bounds = r#"{"min": 1.0, "max": 5.0}"#;
+    let mode = "/api/v1/loops/bowl/mode";
+    let holding = r#"{"mode": "holding"}"#;
+    let credentials: &[(&str, &str, Option<&str>, u16)] = &[
+        (mode, holding, None, 401),
+        (mode, holding, Some("not-a-known-token"), 401),
+        (mode, holding, Some(VIEWER), 403),
+        (bounds, valid_bounds, None, 401),
+        (bounds, valid_bounds, Some(VIEWER), 403),
+    ];
+    for (path, body, token, status) in credentials {
+        let answer = call(&r.rig, "PUT", path, *token, Some(body));
+        assert_eq!(answer.status, *status, "{path} {body} {token:?}: {}", answer.body);
+    }
     for (path, body, status, message) in cases {
         let answer = call(&r.rig, "PUT", path, Some(OPERATOR), Some(body));
         assert_eq!(answer.status, *status, "{path} {body}: {}", answer.body);
@@ -222,7 +253,7 @@ fn events_record_who_changed_what_newest_first() {
     );
     // History is written in batches, a moment after the change.
     wait_until("the change is in history", Duration::from_secs(5), || {
-        events(&r.rig)[0]["kind"] == "bounds_changed"
+        events(&r.rig).first().is_some_and(|e| e["kind"] == "bounds_changed")
     });
     let events = events(&r.rig);
     assert_eq!(events[0]["kind"], "bounds_changed");
@@ -293,29 +324,31 @@ fn metrics_parse_with_prometheus_client_and_name_every_series() {
          text = open({path:?}).read()\n\
          out = {{}}\n\
          for f in text_string_to_metric_families(text):\n\
-         \x20   out[f.name] = {{'type': f.type, 'labels': sorted({{tuple(sorted(s.labels.items())) for s in f.samples}})}}\n\
+         \x20   names = {{k for s in f.samples for k in s.labels if k != 'le'}}\n\
+         \x20   out[f.name] = {{'type': f.type, 'labels': sorted(names)}}\n\
          print(json.dumps(out))",
         path = path.display().to_string()
     ));
     // Source: INTERFACE.md metrics table (names, types, labels).
-    let expected = [
-        ("ridgeline_objective", "gauge"),
-        ("ridgeline_setpoint", "gauge"),
-        ("ridgeline_estimate", "gauge"),
-        ("ridgeline_gradient", "gauge"),
-        ("ridgeline_loop_state", "gauge"),
-        ("ridgeline_fallbacks", "counter"),
-        ("ridgeline_link_errors", "counter"),
-        ("ridgeline_link_request_seconds", "histogram"),
-        ("ridgeline_tick_lateness_seconds", "histogram"),
-        ("ridgeline_history_queue_depth", "gauge"),
-        ("ridgeline_history_rows", "counter"),
-        ("ridgeline_history_dropped", "counter"),
-        ("ridgeline_http_requests", "counter"),
-        ("ridgeline_build_info", "gauge"),
+    let expected: &[(&str, &str, &[&str])] = &[
+        ("ridgeline_objective", "gauge", &["loop"]),
+        ("ridgeline_setpoint", "gauge", &["input", "loop"]),
+        ("ridgeline_estimate", "gauge", &["input", "loop"]),
+        ("ridgeline_gradient", "gauge", &["input", "loop"]),
+        ("ridgeline_loop_state", "gauge", &["loop", "state"]),
+        ("ridgeline_fallbacks", "counter", &["loop", "reason"]),
+        ("ridgeline_link_errors", "counter", &["kind", "link"]),
+        ("ridgeline_link_request_seconds", "histogram", &["link"]),
+        ("ridgeline_tick_lateness_seconds", "histogram", &["loop"]),
+        ("ridgeline_history_queue_depth", "gauge", &[]),
+        ("ridgeline_history_rows", "counter", &[]),
+        ("ridgeline_history_dropped", "counter", &[]),
+        ("ridgeline_http_requests", "counter", &["route", "status"]),
+        ("ridgeline_build_info", "gauge", &["version"]),
     ];
-    for (name, kind) in expected {
-        assert_eq!(parsed[name]["type"], kind, "{name}: {}", parsed[name]);
+    for (name, kind, labels) in expected {
+        assert_eq!(parsed[name]["type"], *kind, "{name}: {}", parsed[name]);
+        assert_eq!(parsed[name]["labels"], serde_json::json!(labels), "{name}'s label names");
     }
     let text = &metrics.body;
     for series in [

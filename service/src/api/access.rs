@@ -70,7 +70,12 @@ impl AccessList {
     /// The caller behind an `Authorization` header value. Every entry is compared, in
     /// constant time, so timing says nothing about which hash was close.
     fn identify(&self, authorization: Option<&str>) -> Option<Caller> {
-        let token = authorization?.strip_prefix("Bearer ")?.trim();
+        // The scheme's name is case-insensitive (RFC 9110 §11.1).
+        let (scheme, token) = authorization?.trim_start().split_once(' ')?;
+        if !scheme.eq_ignore_ascii_case("bearer") {
+            return None;
+        }
+        let token = token.trim();
         let presented: [u8; 32] = Sha256::digest(token.as_bytes()).into();
         let mut found = None;
         for (name, role, hash) in &self.entries {
@@ -148,6 +153,15 @@ mod tests {
         assert!(matches!(l.write(Some("Bearer nope")), Err(Denied::Unauthenticated(_))));
         assert!(matches!(l.write(Some("op-token")), Err(Denied::Unauthenticated(_))));
         assert!(matches!(l.write(Some("Bearer view-token")), Err(Denied::Forbidden(_))));
+        assert!(matches!(l.write(Some("Basic op-token")), Err(Denied::Unauthenticated(_))));
+    }
+
+    #[test]
+    fn the_scheme_name_is_case_insensitive() {
+        // Source: RFC 9110 §11.1, the authentication scheme is case-insensitive.
+        let l = list(true);
+        assert_eq!(l.write(Some("bearer op-token")).unwrap().name, "ops");
+        assert_eq!(l.write(Some("BEARER  op-token")).unwrap().name, "ops");
     }
 
     #[test]

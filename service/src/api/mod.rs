@@ -186,6 +186,11 @@ pub const ROUTES: &[(&str, &str)] = &[
 ];
 
 pub fn router(state: ApiState) -> Router {
+    // Prometheus instrumentation practice: the request counter exists from the first scrape.
+    for (_, route) in ROUTES {
+        state.metrics.http_requests.with_label_values(&[route, "200"]);
+    }
+    state.metrics.http_requests.with_label_values(&[UNMATCHED_ROUTE, "404"]);
     Router::new()
         .route("/healthz", get(handlers::healthz))
         .route("/readyz", get(handlers::readyz))
@@ -232,6 +237,43 @@ async fn unmatched(State(state): State<ApiState>, uri: axum::http::Uri) -> ApiEr
 #[cfg(test)]
 mod tests {
     use super::*;
+
+    #[tokio::test]
+    async fn every_listed_route_is_served_by_the_router_and_counted_from_the_start() {
+        let text =
+            std::fs::read_to_string(concat!(env!("CARGO_MANIFEST_DIR"), "/../config/demo.toml")).unwrap();
+        let config = crate::config::parse(&text, "demo").unwrap();
+        let metrics = Arc::new(Metrics::new(&config));
+        let state = ApiState {
+            loops: Arc::new(Vec::new()),
+            history: None,
+            metrics: metrics.clone(),
+            access: Arc::new(AccessList::new(&[], true)),
+        };
+        let app = router(state);
+        let first_scrape = metrics.render();
+        let listener = tokio::net::TcpListener::bind("127.0.0.1:0").await.unwrap();
+        let address = listener.local_addr().unwrap();
+        tokio::spawn(async move { axum::serve(listener, app).await });
+        let client = reqwest::Client::new();
+        for (method, route) in ROUTES {
+            let counted = format!("ridgeline_http_requests_total{{route=\"{route}\",status=\"200\"}} 0");
+            assert!(first_scrape.contains(&counted), "missing `{counted}` in:\n{first_scrape}");
+            let path = route.replace("{loop}", "nowhere").replace("{input}", "x");
+            let answer = client
+                .request(method.parse().unwrap(), format!("http://{address}{path}"))
+                .send()
+                .await
+                .unwrap();
+            let status = answer.status();
+            let body = answer.text().await.unwrap();
+            // Any answer but the router's own: no route, or not that method.
+            assert!(
+                status != StatusCode::METHOD_NOT_ALLOWED && !body.contains("there is no route"),
+                "{method} {route}: {status} {body}"
+            );
+        }
+    }
 
     #[test]
     fn the_openapi_document_lists_every_route_of_the_router() {

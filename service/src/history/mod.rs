@@ -63,6 +63,8 @@ pub enum HistoryError {
 #[derive(Debug, Clone, PartialEq)]
 pub struct SampleRecord {
     pub loop_name: Arc<str>,
+    /// The loop's tick index, by which history is thinned evenly under overload.
+    pub tick: u64,
     pub at_ms: i64,
     /// `None` when the tick had no usable objective; a non-finite value is stored as NULL.
     pub objective: Option<f64>,

@@ -30,6 +30,7 @@ fn sample(loop_name: &str, at_ms: i64, inputs: &[(&str, f64, f64, f64)]) -> Samp
     SampleRecord {
         resumable: true,
         loop_name: loop_name.into(),
+        tick: at_ms.max(0) as u64,
         at_ms,
         objective: Some(at_ms as f64 / 1000.0),
         state: "seeking",
@@ -295,15 +296,29 @@ async fn a_full_queue_drops_samples_and_counts_them_but_never_events_and_never_w
 }
 
 #[tokio::test]
+async fn a_filling_queue_thins_each_loop_evenly_before_it_is_full() {
+    let (_dir, history) = fresh().await;
+    let metrics = metrics();
+    let (sender, mut writer) = history.writer(settings(8), Some(metrics.clone()));
+    let kept: Vec<i64> = (0..64).filter(|&k| sender.sample(sample("boiler", k, &[]))).collect();
+    // Every tick below half full, then every 2nd, 4th and 8th, then none.
+    assert_eq!(kept, [0, 1, 2, 3, 4, 6, 8, 16]);
+    assert_eq!(metrics.history_dropped.get(), 56);
+    assert_eq!(metrics.history_queue_depth.get(), 8, "the depth is current while nothing drains");
+    let rows = writer.step().await.unwrap().unwrap();
+    assert_eq!(rows.samples, 8);
+}
+
+#[tokio::test]
 async fn step_writes_a_whole_batch_in_one_transaction_and_keeps_a_failed_one_for_the_next_try() {
     let (_dir, history) = fresh().await;
     let metrics = metrics();
-    let (sender, mut writer) = history.writer(settings(20_000), Some(metrics.clone()));
+    let (sender, mut writer) = history.writer(settings(30_000), Some(metrics.clone()));
     for k in 0..12_345 {
         sender.sample(sample(["boiler", "chiller", "dryer"][k % 3], k as i64, &[("u", 1.0, k as f64, 0.0)]));
     }
     sender.event(event(1, Some("boiler"), "mode", "alice"));
-    assert_eq!(metrics.history_queue_depth.get(), 0, "set by the writer, not the sender");
+    assert_eq!(metrics.history_queue_depth.get(), 12_345);
 
     // The event's insert fails after the samples of its batch were inserted: the whole
     // batch rolls back, and is kept.
@@ -336,7 +351,7 @@ async fn step_writes_a_whole_batch_in_one_transaction_and_keeps_a_failed_one_for
 #[tokio::test]
 async fn run_writes_while_running_and_flushes_everything_queued_when_cancelled() {
     let (_dir, history) = fresh().await;
-    let (sender, writer) = history.writer(settings(10_000), None);
+    let (sender, writer) = history.writer(settings(20_000), None);
     let cancel = CancellationToken::new();
     let task = tokio::spawn(writer.run(cancel.clone()));
     // Recent times, or retention (which `run` does at start) would delete them.
@@ -393,7 +408,7 @@ async fn run_retries_a_failed_batch_until_it_is_written() {
 }
 
 #[tokio::test]
-async fn a_batch_that_keeps_failing_is_given_up_after_five_tries_and_its_samples_counted_as_dropped() {
+async fn a_batch_that_keeps_failing_gives_up_its_samples_after_five_tries_but_keeps_its_events() {
     let (_dir, history) = fresh().await;
     let metrics = metrics();
     let (sender, mut writer) = history.writer(settings(100), Some(metrics.clone()));
@@ -409,7 +424,8 @@ async fn a_batch_that_keeps_failing_is_given_up_after_five_tries_and_its_samples
     // paused clock, as it auto-advances while SQLite works on its own thread.
     tokio::time::pause();
     let started = tokio::time::Instant::now();
-    writer.write_retrying().await;
+    let never = CancellationToken::new();
+    writer.write_retrying(&never).await;
     // Backoff 0.25 + 0.5 + 1 + 2 s between the five attempts (at least: sqlx's own
     // timers may move the paused clock further).
     assert!(started.elapsed() >= Duration::from_millis(3750), "{:?}", started.elapsed());
@@ -420,8 +436,8 @@ async fn a_batch_that_keeps_failing_is_given_up_after_five_tries_and_its_samples
     // The writer carries on with the next batch.
     sqlx::query("DROP TRIGGER refuse").execute(&history.pool).await.unwrap();
     sender.sample(sample("boiler", 11, &[]));
-    writer.write_retrying().await;
-    assert_eq!(count(&history, "samples").await, 1);
+    writer.write_retrying(&never).await;
+    assert_eq!((count(&history, "samples").await, count(&history, "events").await), (1, 1));
 }
 
 #[tokio::test]

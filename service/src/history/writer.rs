@@ -26,6 +26,8 @@ const ROWS_PER_STATEMENT: usize = 100;
 const PRUNE_BATCH_ROWS: i64 = 2000;
 const PRUNE_EVERY: Duration = Duration::from_secs(5 * 60);
 const WRITE_ATTEMPTS: u32 = 5;
+/// How long the flush at shutdown may take.
+const FLUSH_LIMIT: Duration = Duration::from_secs(10);
 const FIRST_RETRY_DELAY: Duration = Duration::from_millis(250);
 const MS_PER_DAY: i64 = 86_400_000;
 
@@ -111,20 +113,26 @@ impl fmt::Debug for HistorySender {
 }
 
 impl HistorySender {
-    /// Queues a sample without waiting. When the queue is full (or the writer has
-    /// stopped) the sample is dropped and counted in `ridgeline_history_dropped_total`:
-    /// under overload history is decimated rather than the loops slowed down. Returns
-    /// whether it was queued.
+    /// Queues a sample without waiting. Under overload history is decimated rather than
+    /// the loops slowed down: once the queue is half full only every second tick of a
+    /// loop is kept, then every 4th and every 8th as it fills further, and when it is
+    /// full (or the writer has stopped) none. Each sample left out is counted in
+    /// `ridgeline_history_dropped_total`. Returns whether it was queued.
     pub fn sample(&self, sample: SampleRecord) -> bool {
-        match self.samples.try_send(sample) {
-            Ok(()) => true,
-            Err(TrySendError::Full(_) | TrySendError::Closed(_)) => {
-                if let Some(m) = &self.metrics {
-                    m.history_dropped.inc();
-                }
-                false
+        let capacity = self.samples.max_capacity();
+        let queued = capacity - self.samples.capacity();
+        let kept = sample.tick % keep_every(queued, capacity) == 0
+            && match self.samples.try_send(sample) {
+                Ok(()) => true,
+                Err(TrySendError::Full(_) | TrySendError::Closed(_)) => false,
+            };
+        if let Some(m) = &self.metrics {
+            m.history_queue_depth.set((capacity - self.samples.capacity()) as i64);
+            if !kept {
+                m.history_dropped.inc();
             }
         }
+        kept
     }
 
     /// Queues an event. Events are never dropped; only if the writer has already stopped
@@ -225,7 +233,9 @@ impl Writer {
                     if !more {
                         break;
                     }
-                    self.write_retrying().await;
+                    // A stop does not wait out a failing batch's retries: the flush
+                    // takes the batch over.
+                    self.write_retrying(&cancel).await;
                 }
                 () = tokio::time::sleep_until(next_prune), if !pruning && self.retention_days > 0 => {
                     pruning = true;
@@ -386,10 +396,12 @@ impl Writer {
         self.latest.retain(|_, inputs| !inputs.is_empty());
     }
 
-    /// Writes the pending batch, retrying with backoff; gives it up, logged, only after
-    /// several failures, so one bad moment never loses history and a lasting failure
-    /// never stalls it.
-    pub(super) async fn write_retrying(&mut self) {
+    /// Writes the pending batch, retrying with backoff. After several failures its
+    /// samples are given up (counted as dropped), so a lasting failure never stalls
+    /// history; its events stay pending for the next batch, since events are never
+    /// dropped.
+    /// Once `stop` is cancelled it makes no further attempt, keeping the batch pending.
+    pub(super) async fn write_retrying(&mut self, stop: &CancellationToken) {
         let mut delay = FIRST_RETRY_DELAY;
         for attempt in 1..=WRITE_ATTEMPTS {
             let result = self.write_batch().await;
@@ -411,18 +423,18 @@ impl Writer {
                         attempt, error = %e, samples = self.samples.len(), events = self.events.len(),
                         "writing a history batch failed; retrying in {delay:?}"
                     );
-                    tokio::time::sleep(delay).await;
+                    tokio::select! {
+                        () = tokio::time::sleep(delay) => {}
+                        () = stop.cancelled() => return,
+                    }
                     delay *= 2;
                 }
                 Err(e) => {
                     tracing::error!(
                         error = %e, samples = self.samples.len(), events = self.events.len(),
-                        "writing a history batch failed {WRITE_ATTEMPTS} times; giving it up \
-                         (its samples are counted as dropped, its events logged one by one)"
+                        "writing a history batch failed {WRITE_ATTEMPTS} times; its samples are \
+                         given up (counted as dropped), its events kept for the next batch"
                     );
-                    for event in self.events.drain(..) {
-                        log_unrecorded(&event, "its batch kept failing");
-                    }
                     if let Some(m) = &self.metrics {
                         m.history_dropped.inc_by(self.samples.len() as u64);
                     }
@@ -432,16 +444,41 @@ impl Writer {
         }
     }
 
-    /// Closes the queues and writes everything in them.
+    /// Closes the queues and writes everything in them. After [`FLUSH_LIMIT`] no new
+    /// attempt starts (one under way finishes), so a database that does not take the
+    /// history does not keep the process from exiting; what is left then is logged
+    /// (events, whole) and counted (samples).
     async fn flush(&mut self) {
         self.samples_rx.close();
         self.events_rx.close();
-        while !(self.samples.is_empty()
-            && self.events.is_empty()
-            && self.samples_rx.is_empty()
-            && self.events_rx.is_empty())
-        {
-            self.write_retrying().await;
+        let deadline = CancellationToken::new();
+        let timer = tokio::spawn({
+            let deadline = deadline.clone();
+            async move {
+                tokio::time::sleep(FLUSH_LIMIT).await;
+                deadline.cancel();
+            }
+        });
+        let drained = |w: &Self| {
+            w.samples.is_empty() && w.events.is_empty() && w.samples_rx.is_empty() && w.events_rx.is_empty()
+        };
+        while !drained(self) && !deadline.is_cancelled() {
+            self.write_retrying(&deadline).await;
+        }
+        timer.abort();
+        if !drained(self) {
+            while let Ok(e) = self.events_rx.try_recv() {
+                self.events.push(e);
+            }
+            for event in self.events.drain(..) {
+                log_unrecorded(&event, "history could not be flushed before exit");
+            }
+            let samples = self.samples.len() + self.samples_rx.len();
+            tracing::error!(samples, "history not flushed within {FLUSH_LIMIT:?}; samples dropped");
+            if let Some(m) = &self.metrics {
+                m.history_dropped.inc_by(samples as u64);
+            }
+            self.samples.clear();
         }
         self.set_queue_depth();
     }
@@ -450,6 +487,16 @@ impl Writer {
         if let Some(m) = &self.metrics {
             m.history_queue_depth.set(self.samples_rx.len() as i64);
         }
+    }
+}
+
+/// Of how many ticks one is kept with `queued` samples waiting in a queue of `capacity`.
+fn keep_every(queued: usize, capacity: usize) -> u64 {
+    match queued as f64 / capacity as f64 {
+        f if f < 0.5 => 1,
+        f if f < 0.75 => 2,
+        f if f < 0.875 => 4,
+        _ => 8,
     }
 }
 

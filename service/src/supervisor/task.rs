@@ -562,6 +562,7 @@ impl LoopTask {
             let known = |v: f64| if started { v } else { f64::NAN };
             h.sample(SampleRecord {
                 loop_name: self.name.clone(),
+                tick: self.last_tick.unwrap_or(0),
                 at_ms: now_ms(),
                 objective: report.objective,
                 state: c.state().as_str(),
