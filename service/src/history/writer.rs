@@ -121,7 +121,7 @@ impl HistorySender {
     pub fn sample(&self, sample: SampleRecord) -> bool {
         let capacity = self.samples.max_capacity();
         let queued = capacity - self.samples.capacity();
-        let kept = sample.tick % keep_every(queued, capacity) == 0
+        let kept = sample.tick.is_multiple_of(keep_every(queued, capacity))
             && match self.samples.try_send(sample) {
                 Ok(()) => true,
                 Err(TrySendError::Full(_) | TrySendError::Closed(_)) => false,
