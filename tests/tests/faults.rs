@@ -291,6 +291,8 @@ fn a_link_cut_trips_a_loop_with_a_permit_too_and_safe_lands_once_the_plc_permits
     sim.stop();
     // The permit is on the cut link too: it stands for stale_after_s, then is withheld,
     // and the trip is remembered (and recorded) without permission.
+    std::thread::sleep(STALE / 2);
+    assert_eq!(state(&rig), "seeking", "the last permit read stands for stale_after_s");
     wait_until("the trip is recorded", Duration::from_secs(10), || {
         rig.status().is_some_and(|s| s["fallback_reason"] == "stale")
     });

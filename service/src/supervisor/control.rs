@@ -99,7 +99,8 @@ pub struct Control {
     restart_filters: bool,
     objective_value: Option<f64>,
     last_read_s: f64,
-    /// When the permit tag was last read.
+    /// When the permit tag was last read (never: minus infinity, so that a permit not
+    /// yet read withholds permission).
     permit_read_s: f64,
     /// Since when the setpoint registers have been failing (writes, or the read-back a
     /// start waits for), while the loop means to write.
@@ -132,7 +133,7 @@ impl Control {
             restart_filters: true,
             objective_value: None,
             last_read_s: 0.0,
-            permit_read_s: 0.0,
+            permit_read_s: f64::NEG_INFINITY,
             failing_since_s: None,
             healthy_since_s: None,
             fault: None,
@@ -154,6 +155,13 @@ impl Control {
 
     pub fn is_started(&self) -> bool {
         self.started
+    }
+
+    /// Whether the PLC holds this loop's dithered setpoints: it is seeking, and has been
+    /// writing since its last (re)start from the PLC. Only then is there dither to take
+    /// out when it stops seeking.
+    pub fn dithering(&self) -> bool {
+        self.started && self.machine.state == State::Seeking && !self.wants_read_back
     }
 
     /// Whether the loop waits for the setpoints in the PLC before writing again (after
@@ -687,6 +695,30 @@ mod tests {
         }
         assert_eq!((c.state(), c.tripped()), (State::Fallback, Some(Trip::Stale)));
         assert!(c.permitted());
+    }
+
+    #[test]
+    fn a_permit_never_read_withholds_permission() {
+        let mut c = Control::new(&config("seeking", ""));
+        c.start(0.0, &[3.0]);
+        let r = c.tick(0, 0.0, Reading { tags: Some(&[10.0]), permit: Permit::Unreadable });
+        assert!(!r.write);
+        assert_eq!(c.state(), State::NoPermit);
+    }
+
+    #[test]
+    fn a_loop_waiting_to_restart_from_the_plc_has_no_dither_there() {
+        let mut c = Control::new(&config("seeking", ""));
+        c.start(0.0, &[3.0]);
+        c.tick(0, 0.0, good(&[10.0]));
+        assert!(c.dithering());
+        c.tick(1, 1.0, Reading { tags: Some(&[10.0]), permit: Permit::Reads(0.0) });
+        c.tick(2, 2.0, Reading { tags: Some(&[10.0]), permit: Permit::Reads(1.0) });
+        assert_eq!(c.state(), State::Seeking);
+        assert!(!c.dithering(), "the operator's setpoint is in the PLC until the read-back");
+        c.restart_from(&[Some(2.7)]);
+        c.tick(3, 3.0, Reading { tags: Some(&[10.0]), permit: Permit::Reads(1.0) });
+        assert!(c.dithering());
     }
 
     #[test]

@@ -411,7 +411,7 @@ impl LoopTask {
         match command {
             Command::SetMode { mode, actor, reply } => {
                 let from = self.control.mode();
-                let was_seeking = self.control.state() == State::Seeking;
+                let was_dithering = self.control.dithering();
                 if let Err(refused) = self.control.ask(mode) {
                     let _ = reply.send(Err(CommandError::Conflict(format!(
                         "loop {} stays in fallback: {}",
@@ -420,8 +420,9 @@ impl LoopTask {
                     return;
                 }
                 // A loop that stops seeking takes its dither out of the PLC. (Leaving holding
-                // leaves the estimate, leaving fallback the fallback value, where they are.)
-                if was_seeking && !self.control.state().writes() && self.control.is_started() {
+                // leaves the estimate, leaving fallback the fallback value, and a loop not yet
+                // restarted from the PLC the PLC's own value, where they are.)
+                if was_dithering && !self.control.state().writes() {
                     self.write_estimates().await;
                 }
                 if from != mode {
