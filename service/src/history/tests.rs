@@ -441,6 +441,41 @@ async fn a_batch_that_keeps_failing_gives_up_its_samples_after_five_tries_but_ke
 }
 
 #[tokio::test]
+async fn an_event_the_database_refuses_is_held_back_without_stopping_the_rest_of_history() {
+    let (_dir, history) = fresh().await;
+    let metrics = metrics();
+    let (sender, mut writer) = history.writer(settings(100), Some(metrics.clone()));
+    sqlx::query(
+        "CREATE TRIGGER refuse BEFORE INSERT ON events WHEN NEW.kind = 'odd' \
+         BEGIN SELECT RAISE(ABORT, 'refused'); END",
+    )
+    .execute(&history.pool)
+    .await
+    .unwrap();
+    sender.sample(sample("boiler", 1, &[]));
+    sender.event(event(1, None, "odd", "system"));
+    tokio::time::pause();
+    let never = CancellationToken::new();
+    writer.write_retrying(&never).await;
+    tokio::time::resume();
+    assert_eq!(metrics.history_dropped.get(), 1, "the batch's sample is given up");
+
+    // Later batches are written, while the refused event waits for its turn.
+    sender.sample(sample("boiler", 2, &[]));
+    sender.event(event(2, None, "mode", "system"));
+    writer.write_retrying(&never).await;
+    let kinds = |rows: Vec<EventRow>| rows.into_iter().map(|r| r.event.kind).collect::<Vec<_>>();
+    assert_eq!(kinds(history.events(None, None, 10).await.unwrap()), ["mode"]);
+    assert_eq!(count(&history, "samples").await, 1);
+
+    sqlx::query("DROP TRIGGER refuse").execute(&history.pool).await.unwrap();
+    sender.sample(sample("boiler", 3, &[]));
+    writer.write_retrying(&never).await;
+    assert_eq!(kinds(history.events(None, None, 10).await.unwrap()), ["mode", "odd"], "newest first");
+    assert_eq!(count(&history, "samples").await, 2);
+}
+
+#[tokio::test]
 async fn run_cancelled_before_it_starts_still_writes_what_was_queued() {
     let (_dir, history) = fresh().await;
     let (sender, writer) = history.writer(settings(100), None);

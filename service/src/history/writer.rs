@@ -155,6 +155,10 @@ pub struct Writer {
     /// The batch being written: kept until it is committed, so a failure loses nothing.
     samples: Vec<SampleRecord>,
     events: Vec<EventRecord>,
+    /// Events of batches given up. They are written in a transaction of their own before
+    /// each batch, so that history goes on even if one of them is what the database
+    /// refuses.
+    carried: Vec<EventRecord>,
     retention_days: u32,
     metrics: Option<Arc<Metrics>>,
     /// Shared with [`super::History::writes_ok`]: whether the last batch was committed.
@@ -170,6 +174,7 @@ impl fmt::Debug for Writer {
         f.debug_struct("Writer")
             .field("pending_samples", &self.samples.len())
             .field("pending_events", &self.events.len())
+            .field("carried_events", &self.carried.len())
             .finish_non_exhaustive()
     }
 }
@@ -191,6 +196,7 @@ pub(super) fn channel(
         events_rx,
         samples: Vec::new(),
         events: Vec::new(),
+        carried: Vec::new(),
         retention_days: settings.retention_days,
         metrics,
         writes_ok,
@@ -316,6 +322,14 @@ impl Writer {
         }
         self.set_queue_depth();
         let written = Written { samples: self.samples.len(), events: self.events.len() };
+        if !self.carried.is_empty()
+            && let Err(e) = self.write_carried().await
+        {
+            tracing::debug!(error = %e, events = self.carried.len(), "events held back still not written");
+            if written.samples + written.events == 0 {
+                return Err(e);
+            }
+        }
         if written.samples + written.events == 0 {
             return Ok(written);
         }
@@ -348,16 +362,7 @@ impl Writer {
             done?;
             next = following;
         }
-        for e in &self.events {
-            sqlx::query("INSERT INTO events (at_ms, loop, kind, detail, actor) VALUES (?, ?, ?, ?, ?)")
-                .bind(e.at_ms)
-                .bind(e.loop_name.clone())
-                .bind(e.kind.clone())
-                .bind(e.detail.to_string())
-                .bind(e.actor.clone())
-                .execute(&mut *tx)
-                .await?;
-        }
+        insert_events(&mut tx, &self.events).await?;
         let latest: Vec<_> = self
             .latest
             .iter()
@@ -371,6 +376,21 @@ impl Writer {
             query.execute(&mut *tx).await?;
         }
         tx.commit().await?;
+        Ok(())
+    }
+
+    /// Writes the events of batches given up, alone in one transaction.
+    async fn write_carried(&mut self) -> Result<(), HistoryError> {
+        let mut conn = self.take_conn().await?;
+        let mut tx = conn.begin_with("BEGIN IMMEDIATE").await?;
+        insert_events(&mut tx, &self.carried).await?;
+        tx.commit().await?;
+        self.conn = Some(conn);
+        tracing::info!(events = self.carried.len(), "events held back by failed batches are written");
+        if let Some(m) = &self.metrics {
+            m.history_rows.inc_by(self.carried.len() as u64);
+        }
+        self.carried.clear();
         Ok(())
     }
 
@@ -396,10 +416,10 @@ impl Writer {
         self.latest.retain(|_, inputs| !inputs.is_empty());
     }
 
-    /// Writes the pending batch, retrying with backoff. After several failures its
-    /// samples are given up (counted as dropped), so a lasting failure never stalls
-    /// history; its events stay pending for the next batch, since events are never
-    /// dropped.
+    /// Writes the pending batch, retrying with backoff. After several failures the batch
+    /// is given up, so a lasting failure never stalls history: its samples are counted as
+    /// dropped, and its events are held back and tried again before each later batch,
+    /// since events are never dropped.
     /// Once `stop` is cancelled it makes no further attempt, keeping the batch pending.
     pub(super) async fn write_retrying(&mut self, stop: &CancellationToken) {
         let mut delay = FIRST_RETRY_DELAY;
@@ -433,12 +453,13 @@ impl Writer {
                     tracing::error!(
                         error = %e, samples = self.samples.len(), events = self.events.len(),
                         "writing a history batch failed {WRITE_ATTEMPTS} times; its samples are \
-                         given up (counted as dropped), its events kept for the next batch"
+                         given up (counted as dropped), its events held back for later"
                     );
                     if let Some(m) = &self.metrics {
                         m.history_dropped.inc_by(self.samples.len() as u64);
                     }
                     self.samples.clear();
+                    self.carried.append(&mut self.events);
                 }
             }
         }
@@ -460,7 +481,11 @@ impl Writer {
             }
         });
         let drained = |w: &Self| {
-            w.samples.is_empty() && w.events.is_empty() && w.samples_rx.is_empty() && w.events_rx.is_empty()
+            w.samples.is_empty()
+                && w.events.is_empty()
+                && w.carried.is_empty()
+                && w.samples_rx.is_empty()
+                && w.events_rx.is_empty()
         };
         while !drained(self) && !deadline.is_cancelled() {
             self.write_retrying(&deadline).await;
@@ -470,7 +495,7 @@ impl Writer {
             while let Ok(e) = self.events_rx.try_recv() {
                 self.events.push(e);
             }
-            for event in self.events.drain(..) {
+            for event in self.carried.drain(..).chain(self.events.drain(..)) {
                 log_unrecorded(&event, "history could not be flushed before exit");
             }
             let samples = self.samples.len() + self.samples_rx.len();
@@ -488,6 +513,20 @@ impl Writer {
             m.history_queue_depth.set(self.samples_rx.len() as i64);
         }
     }
+}
+
+async fn insert_events(conn: &mut SqliteConnection, events: &[EventRecord]) -> Result<(), sqlx::Error> {
+    for e in events {
+        sqlx::query("INSERT INTO events (at_ms, loop, kind, detail, actor) VALUES (?, ?, ?, ?, ?)")
+            .bind(e.at_ms)
+            .bind(e.loop_name.clone())
+            .bind(e.kind.clone())
+            .bind(e.detail.to_string())
+            .bind(e.actor.clone())
+            .execute(&mut *conn)
+            .await?;
+    }
+    Ok(())
 }
 
 /// Of how many ticks one is kept with `queued` samples waiting in a queue of `capacity`.
