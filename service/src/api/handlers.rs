@@ -31,7 +31,7 @@ pub async fn healthz() -> &'static str {
 pub async fn readyz(State(state): State<ApiState>) -> Result<Json<Value>, ApiError> {
     if state.history.as_ref().is_some_and(|h| !h.writes_ok()) {
         return Err(ApiError::Unavailable(
-            "the history database is not writable: the last batch failed".into(),
+            "history is not being written: its last batch failed, or its writer has stopped".into(),
         ));
     }
     let stopped: Vec<&str> = state

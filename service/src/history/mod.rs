@@ -32,7 +32,8 @@ const STREAM_PAGE_ROWS: u32 = 1000;
 pub struct History {
     pool: SqlitePool,
     path: Arc<Path>,
-    /// Whether the writer's last batch was committed (true until one fails).
+    /// Whether the writer's last batch was committed (true until one fails), and the
+    /// writer is still there.
     writes_ok: Arc<std::sync::atomic::AtomicBool>,
 }
 

@@ -476,6 +476,15 @@ async fn an_event_the_database_refuses_is_held_back_without_stopping_the_rest_of
 }
 
 #[tokio::test]
+async fn a_writer_that_is_gone_is_reported_as_not_writing() {
+    let (_dir, history) = fresh().await;
+    let (_sender, writer) = history.writer(settings(10), None);
+    assert!(history.writes_ok());
+    drop(writer);
+    assert!(!history.writes_ok());
+}
+
+#[tokio::test]
 async fn run_cancelled_before_it_starts_still_writes_what_was_queued() {
     let (_dir, history) = fresh().await;
     let (sender, writer) = history.writer(settings(100), None);

@@ -169,6 +169,14 @@ pub struct Writer {
     states: Vec<Arc<str>>,
 }
 
+/// A writer that is gone (its task ended, or panicked) writes nothing more: `/readyz`
+/// says so.
+impl Drop for Writer {
+    fn drop(&mut self) {
+        self.writes_ok.store(false, std::sync::atomic::Ordering::Relaxed);
+    }
+}
+
 impl fmt::Debug for Writer {
     fn fmt(&self, f: &mut fmt::Formatter<'_>) -> fmt::Result {
         f.debug_struct("Writer")
