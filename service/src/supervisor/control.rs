@@ -192,15 +192,16 @@ impl Control {
         self.restart_filters = true;
     }
 
-    /// The watchdog's verdict at `now_s`: the first fault that holds, if any.
-    fn fault_at(&self, now_s: f64, objective: Option<f64>) -> Option<Trip> {
+    /// The watchdog's verdict at `now_s`, given what is wrong with this tick's objective:
+    /// the first fault that holds, if any.
+    fn fault_at(&self, now_s: f64, objective: Option<ObjectiveFault>) -> Option<Trip> {
         if now_s - self.last_read_s >= self.stale_after_s {
             return Some(Trip::Stale);
         }
-        match objective.map(|j| check_objective(j, self.plausible)) {
-            Some(Err(ObjectiveFault::NotFinite)) => return Some(Trip::NotFinite),
-            Some(Err(ObjectiveFault::OutOfRange)) => return Some(Trip::OutOfRange),
-            _ => {}
+        match objective {
+            Some(ObjectiveFault::NotFinite) => return Some(Trip::NotFinite),
+            Some(ObjectiveFault::OutOfRange) => return Some(Trip::OutOfRange),
+            None => {}
         }
         match self.failing_since_s {
             Some(since) if now_s - since >= self.stale_after_s => Some(Trip::WriteFailed),
@@ -261,13 +262,10 @@ impl Control {
             Some(j) => check_objective(j, self.plausible).map_err(Some),
             None => Err(None),
         };
-        let quiet = TickReport {
-            write: false,
-            objective,
-            fault: checked.err().flatten(),
-            guard: GuardActions::default(),
-        };
-        self.fault = self.fault_at(now_s, objective);
+        let objective_fault = checked.err().flatten();
+        let quiet =
+            TickReport { write: false, objective, fault: objective_fault, guard: GuardActions::default() };
+        self.fault = self.fault_at(now_s, objective_fault);
         if let Some(permitted) = self.permit_at(now_s, reading.permit)
             && permitted != self.machine.permitted
         {

@@ -88,7 +88,6 @@ pub struct LoopTask {
     values: Vec<Option<f64>>,
     /// The objective's tags of a read that got them all.
     objective_values: Vec<f64>,
-    has_permit: bool,
     status: watch::Sender<LoopStatus>,
     commands: mpsc::Receiver<Command>,
     reporting: Reporting,
@@ -125,7 +124,6 @@ impl LoopTask {
         let task = LoopTask {
             values: vec![None; tags.len()],
             objective_values: Vec::with_capacity(tags.len()),
-            has_permit: loop_config.permit.is_some(),
             write_failing: vec![false; loop_config.inputs.len()],
             name: Arc::from(loop_config.name.as_str()),
             input_names: loop_config.inputs.iter().map(|i| Arc::from(i.name.as_str())).collect(),
@@ -190,7 +188,7 @@ impl LoopTask {
         if tags_read {
             self.objective_at = Some(now_ms());
         }
-        let permit = match (self.has_permit, permit_tag.first()) {
+        let permit = match (self.config.permit.is_some(), permit_tag.first()) {
             (false, _) => Permit::NotConfigured,
             (true, Some(Some(v))) => Permit::Reads(*v),
             (true, _) => Permit::Unreadable,
