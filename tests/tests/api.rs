@@ -45,14 +45,6 @@ fn call(rig: &Rig, method: &str, path: &str, token: Option<&str>, body: Option<&
     http_request(rig.api(), method, path, &headers, body).expect("the API answers")
 }
 
-fn events(rig: &Rig) -> Vec<serde_json::Value> {
-    call(rig, "GET", "/api/v1/events?loop=bowl&limit=1000", Some(VIEWER), None)
-        .json()
-        .as_array()
-        .unwrap()
-        .clone()
-}
-
 /// Every write route, with a body it accepts.
 const WRITES: &[(&str, &str)] = &[
     ("/api/v1/loops/bowl/mode", r#"{"mode": "holding"}"#),
@@ -90,7 +82,9 @@ fn every_write_route_needs_an_operator_token() {
     assert_eq!(status["inputs"][0]["bounds"], serde_json::json!({"min": 0.5, "max": 5.5}));
     // One event for each accepted change, none for the six refused requests.
     std::thread::sleep(Duration::from_millis(500));
-    let changes: Vec<serde_json::Value> = events(&r.rig)
+    let changes: Vec<serde_json::Value> = r
+        .rig
+        .events()
         .into_iter()
         .filter(|e| e["kind"] == "mode_changed" || e["kind"] == "bounds_changed")
         .map(|e| e["actor"].clone())
@@ -139,9 +133,9 @@ fn refused_changes_leave_the_loop_and_the_history_unchanged() {
     let before = call(&r.rig, "GET", "/api/v1/loops/bowl", None, None).json();
     // Everything the start records is in history before counting.
     wait_until("the start is in history", Duration::from_secs(5), || {
-        events(&r.rig).iter().any(|e| e["kind"] == "loop_started")
+        r.rig.events().iter().any(|e| e["kind"] == "loop_started")
     });
-    let events_before = events(&r.rig).len();
+    let events_before = r.rig.events().len();
     let bounds = "/api/v1/loops/bowl/inputs/u/bounds";
     let cases: &[(&str, &str, u16, &str)] = &[
         (bounds, r#"{"min": -1.0, "max": 5.0}"#, 422, "outside the limits"),
@@ -188,7 +182,7 @@ fn refused_changes_leave_the_loop_and_the_history_unchanged() {
     let after = call(&r.rig, "GET", "/api/v1/loops/bowl", None, None).json();
     assert_eq!(after["mode"], before["mode"]);
     assert_eq!(after["inputs"][0]["bounds"], before["inputs"][0]["bounds"]);
-    assert_eq!(events(&r.rig).len(), events_before, "no event for a refused change");
+    assert_eq!(r.rig.events().len(), events_before, "no event for a refused change");
 }
 
 #[test]
@@ -253,9 +247,9 @@ fn events_record_who_changed_what_newest_first() {
     );
     // History is written in batches, a moment after the change.
     wait_until("the change is in history", Duration::from_secs(5), || {
-        events(&r.rig).first().is_some_and(|e| e["kind"] == "bounds_changed")
+        r.rig.events().first().is_some_and(|e| e["kind"] == "bounds_changed")
     });
-    let events = events(&r.rig);
+    let events = r.rig.events();
     assert_eq!(events[0]["kind"], "bounds_changed");
     assert_eq!(events[0]["actor"], "shift-script");
     assert_eq!(events[0]["loop"], "bowl");

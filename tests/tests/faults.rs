@@ -52,21 +52,12 @@ fn put_mode(rig: &Rig, mode: &str) -> ridgeline_tests::HttpAnswer {
         .unwrap()
 }
 
-fn events(rig: &Rig) -> Vec<serde_json::Value> {
-    http_request(rig.api(), "GET", "/api/v1/events?loop=bowl&limit=1000", &[], None)
-        .unwrap()
-        .json()
-        .as_array()
-        .unwrap()
-        .clone()
-}
-
 #[test]
 fn a_cut_link_trips_to_fallback_and_safe_lands_on_the_first_tick_it_answers_again() {
     let rig = Rig::new("");
     let mut sim = rig.sim();
     let _service = rig.service();
-    wait_until("the loop is writing", Duration::from_secs(20), || rig.setpoint().is_some_and(|v| v != 2.0));
+    rig.wait_writing();
     sim.stop();
     let to_fallback = time_until_state(&rig, "fallback", Duration::from_secs(10));
     eprintln!("measured: link cut -> fallback in {to_fallback:?} (stale_after_s {STALE:?}, tick {TICK:?})");
@@ -81,7 +72,7 @@ fn a_cut_link_trips_to_fallback_and_safe_lands_on_the_first_tick_it_answers_agai
     eprintln!("measured: PLC back -> safe setpoint in the register in {to_safe:?}");
     // Source: issue requirement, the fallback value lands on the first tick the link answers.
     assert!(to_safe <= TICK + MEASURING, "{to_safe:?}");
-    let tripped = events(&rig).into_iter().find(|e| e["kind"] == "tripped").expect("a trip event");
+    let tripped = rig.events().into_iter().find(|e| e["kind"] == "tripped").expect("a trip event");
     assert_eq!(tripped["detail"]["trip"], "stale");
     assert_eq!(tripped["actor"], "system");
 }
@@ -119,8 +110,7 @@ fn a_nan_objective_trips_and_no_nan_is_ever_written() {
 
 #[test]
 fn without_the_plcs_permit_nothing_is_written_and_its_return_restarts_bumpless() {
-    let permit = "\n[tags.enable]\nlink = \"plc\"\nholding_register = 300\ntype = \"f32\"\n";
-    let rig = Rig::new("permit = \"enable\"").with_tables(permit);
+    let rig = Rig::with_permit();
     let _sim = rig.sim();
     // The operator at the HMI withholds permission before the service starts.
     assert!(write_holding_registers(rig.plant_port(), 300, &f32_words(0.0)));
@@ -149,7 +139,7 @@ fn without_the_plcs_permit_nothing_is_written_and_its_return_restarts_bumpless()
     // far from the 2.0 where the loop's own estimate stood.
     assert!((first - 2.7).abs() <= 0.21, "bumpless: started next to the operator's 2.7, wrote {first}");
     assert_eq!(state(&rig), "seeking");
-    assert!(events(&rig).iter().any(|e| e["kind"] == "permit_granted"));
+    assert!(rig.events().iter().any(|e| e["kind"] == "permit_granted"));
 }
 
 #[test]
@@ -157,7 +147,7 @@ fn manual_recovery_is_refused_with_409_while_the_fault_persists_and_accepted_aft
     let rig = Rig::new("").with_service("", &access());
     let mut sim = rig.sim();
     let _service = rig.service();
-    wait_until("the loop is writing", Duration::from_secs(20), || rig.setpoint().is_some_and(|v| v != 2.0));
+    rig.wait_writing();
     sim.stop();
     time_until_state(&rig, "fallback", Duration::from_secs(10));
     let refused = put_mode(&rig, "seeking");
@@ -172,7 +162,7 @@ fn manual_recovery_is_refused_with_409_while_the_fault_persists_and_accepted_aft
             && put_mode(&rig, "seeking").status == 200
     });
     assert_eq!(state(&rig), "seeking");
-    let recovered = events(&rig).into_iter().find(|e| e["kind"] == "recovered").expect("a recovery event");
+    let recovered = rig.events().into_iter().find(|e| e["kind"] == "recovered").expect("a recovery event");
     assert_eq!(recovered["actor"], "night-shift");
 }
 
@@ -182,14 +172,14 @@ fn automatic_recovery_returns_to_seeking_after_the_healthy_interval() {
         Rig::new("").edit("stale_after_s = 1", "stale_after_s = 1\nrecover = \"auto\"\nrecover_after_s = 1");
     let mut sim = rig.sim();
     let _service = rig.service();
-    wait_until("the loop is writing", Duration::from_secs(20), || rig.setpoint().is_some_and(|v| v != 2.0));
+    rig.wait_writing();
     sim.stop();
     time_until_state(&rig, "fallback", Duration::from_secs(10));
     let _sim = rig.sim();
     let took = time_until_state(&rig, "seeking", Duration::from_secs(10));
     eprintln!("measured: PLC back -> seeking again (recover_after_s 1 s) in {took:?}");
     assert!(took >= Duration::from_millis(900), "not before the healthy interval: {took:?}");
-    assert!(events(&rig).iter().any(|e| e["kind"] == "recovered" && e["actor"] == "system"));
+    assert!(rig.events().iter().any(|e| e["kind"] == "recovered" && e["actor"] == "system"));
 }
 
 #[test]
@@ -228,12 +218,12 @@ fn after_kill_9_a_restart_resumes_from_the_stored_estimate() {
     });
     std::thread::sleep(Duration::from_millis(300));
     // The first run's loop_started event is in the same database: only a later one counts.
-    let first_run = events(&rig).iter().filter_map(|e| e["id"].as_i64()).max().unwrap_or(0);
+    let first_run = rig.events().iter().filter_map(|e| e["id"].as_i64()).max().unwrap_or(0);
     service.stop();
     let restarting = Instant::now();
     let _service = rig.service();
     let restarted = || {
-        events(&rig).into_iter().find(|e| e["kind"] == "loop_started" && e["id"].as_i64() > Some(first_run))
+        rig.events().into_iter().find(|e| e["kind"] == "loop_started" && e["id"].as_i64() > Some(first_run))
     };
     wait_until("the restarted loop started", Duration::from_secs(10), || restarted().is_some());
     eprintln!("measured: kill -9, restart -> resumed from the stored estimate in {:?}", restarting.elapsed());
@@ -258,10 +248,10 @@ fn trips_before_it_could_start(behaviour: BadPlc, label: &str) {
     assert_eq!(status["fallback_reason"], "stale", "{status}");
     assert_eq!(status["inputs"][0]["estimate"], serde_json::Value::Null, "never started: {status}");
     assert_eq!(status["inputs"][0]["applied"], 1.0, "safe is what it tries to write: {status}");
-    assert!(events(&rig).iter().any(|e| e["kind"] == "tripped" && e["detail"]["trip"] == "stale"));
+    assert!(rig.events().iter().any(|e| e["kind"] == "tripped" && e["detail"]["trip"] == "stale"));
     let before = status["ticks"].as_u64().unwrap();
     std::thread::sleep(Duration::from_millis(800));
-    let after = rig.status().unwrap()["ticks"].as_u64().unwrap();
+    let after = rig.ticks();
     assert!(after > before, "the loop keeps ticking ({before} -> {after})");
     let stopping = Instant::now();
     assert_eq!(service.terminate(), Some(0), "it stops cleanly");
@@ -283,11 +273,10 @@ fn a_loop_against_a_plc_answering_after_twice_the_timeout_from_the_start_trips_a
 
 #[test]
 fn a_link_cut_trips_a_loop_with_a_permit_too_and_safe_lands_once_the_plc_permits_again() {
-    let permit = "\n[tags.enable]\nlink = \"plc\"\nholding_register = 300\ntype = \"f32\"\n";
-    let rig = Rig::new("permit = \"enable\"").with_tables(permit);
+    let rig = Rig::with_permit();
     let mut sim = rig.sim();
     let _service = rig.service();
-    wait_until("the loop is writing", Duration::from_secs(20), || rig.setpoint().is_some_and(|v| v != 2.0));
+    rig.wait_writing();
     sim.stop();
     // The permit is on the cut link too: it stands for stale_after_s, then is withheld,
     // and the trip is remembered (and recorded) without permission.
@@ -296,9 +285,9 @@ fn a_link_cut_trips_a_loop_with_a_permit_too_and_safe_lands_once_the_plc_permits
     wait_until("the trip is recorded", Duration::from_secs(10), || {
         rig.status().is_some_and(|s| s["fallback_reason"] == "stale")
     });
-    assert!(events(&rig).iter().any(|e| e["kind"] == "tripped" && e["detail"]["trip"] == "stale"));
+    assert!(rig.events().iter().any(|e| e["kind"] == "tripped" && e["detail"]["trip"] == "stale"));
     let _sim = rig.sim();
-    time_until("safe is in the register", Duration::from_secs(5), || rig.setpoint() == Some(1.0));
+    wait_until("safe is in the register", Duration::from_secs(5), || rig.setpoint() == Some(1.0));
     assert_eq!(state(&rig), "fallback");
 }
 
@@ -308,7 +297,7 @@ fn trips_when_the_plc_turns(behaviour: BadPlc, label: &str, slack: Duration) {
     let rig = Rig::new("");
     let mut sim = rig.sim();
     let _service = rig.service();
-    wait_until("the loop is writing", Duration::from_secs(20), || rig.setpoint().is_some_and(|v| v != 2.0));
+    rig.wait_writing();
     sim.stop();
     bad_plc(behaviour, Some(rig.plant_port()));
     let took = time_until_state(&rig, "fallback", Duration::from_secs(10));
@@ -318,7 +307,7 @@ fn trips_when_the_plc_turns(behaviour: BadPlc, label: &str, slack: Duration) {
     // And it keeps ticking: no task is stuck on the misbehaving PLC.
     let before = rig.status().unwrap()["ticks"].as_u64().unwrap();
     std::thread::sleep(Duration::from_millis(800));
-    assert!(rig.status().unwrap()["ticks"].as_u64().unwrap() > before);
+    assert!(rig.ticks() > before);
 }
 
 #[test]

@@ -43,7 +43,7 @@ fn sigterm_writes_the_shutdown_value_and_exits_0() {
     let rig = Rig::new("on_shutdown = \"safe\"");
     let _sim = rig.sim();
     let service = rig.service();
-    wait_until("the loop is writing", Duration::from_secs(20), || rig.setpoint().is_some_and(|v| v != 2.0));
+    rig.wait_writing();
     let stopping = std::time::Instant::now();
     assert_eq!(service.terminate(), Some(0));
     eprintln!("measured: SIGTERM -> shutdown value written and exit 0 in {:?}", stopping.elapsed());
@@ -71,7 +71,7 @@ fn a_restarted_modbus_server_is_reconnected_without_restarting_ridgeline() {
     let rig = Rig::new("");
     let mut sim = rig.sim();
     let _service = rig.service();
-    wait_until("the loop is writing", Duration::from_secs(20), || rig.setpoint().is_some_and(|v| v != 2.0));
+    rig.wait_writing();
     sim.stop();
     std::thread::sleep(Duration::from_millis(800));
     // The new server starts at the plant's initial value, 2.0; a change means the

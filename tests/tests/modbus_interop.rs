@@ -3,14 +3,13 @@
 //! client reads and writes `ridgeline sim`. The values on the wire are encoded and
 //! decoded on the Python side with `struct`, never with Ridgeline's own codec.
 
-use std::process::Command;
 use std::time::Duration;
 
 use ridgeline::config::{Codec, RegisterSpace, RegisterType, WordOrder};
 use ridgeline::field::codec::{decode, encode};
 use ridgeline::field::modbus::{ModbusLink, Urgency};
 use ridgeline::field::{Function, LinkError, MAX_READ_REGISTERS, RegisterRead, plan_blocks};
-use ridgeline_tests::{Peer, python_json, python_peer, ridgeline_bin, write_file};
+use ridgeline_tests::{Peer, python_json, python_peer, spawn_sim, write_file};
 use serde_json::{Value, json};
 
 use RegisterType::{F32, I16, I32, U16, U32};
@@ -342,16 +341,9 @@ expression = "2 * u + 1"
 fn a_pymodbus_client_reads_and_writes_the_ridgeline_simulator() {
     let dir = tempfile::tempdir().expect("a temp dir");
     let plant = write_file(dir.path(), "plant.toml", PLANT);
-    let mut command = Command::new(ridgeline_bin());
     // Port 0: the OS picks a free port and `sim` prints the address it bound.
-    command.args(["sim", "--plant", plant.to_str().expect("a UTF-8 path"), "--listen", "127.0.0.1:0"]);
-    let (_sim, line) = Peer::start("ridgeline sim", command, START, |l| l.contains(" over Modbus/TCP on "));
-    let address = line
-        .split(" over Modbus/TCP on ")
-        .nth(1)
-        .and_then(|rest| rest.split_whitespace().next())
-        .unwrap_or_else(|| panic!("no address in: {line}"));
-    let (host, port) = address.rsplit_once(':').expect("host:port");
+    let (_sim, port) = spawn_sim(&plant, None);
+    let host = "127.0.0.1";
 
     let out = python_json(&format!(
         r#"

@@ -5,9 +5,11 @@
 use std::cell::{Cell, RefCell};
 use std::net::SocketAddr;
 use std::path::PathBuf;
+use std::time::Duration;
 
 use ridgeline_tests::{
-    Peer, f32_from_words, free_port, get_json, read_holding_registers, spawn_service, spawn_sim, write_file,
+    Peer, f32_from_words, free_port, get_json, read_holding_registers, spawn_service, spawn_sim, wait_until,
+    write_file,
 };
 
 /// A static bowl with its peak at u = 3 (no lag, no noise), u starting at 2. Two more
@@ -95,6 +97,12 @@ impl Rig {
         Self::seeking(loop_extra, "y")
     }
 
+    /// A rig whose loop writes only while the PLC's permit (register 300) is not zero.
+    pub fn with_permit() -> Self {
+        Self::new("permit = \"enable\"")
+            .with_tables("\n[tags.enable]\nlink = \"plc\"\nholding_register = 300\ntype = \"f32\"\n")
+    }
+
     /// A rig whose loop seeks on `objective` (a tag name).
     pub fn seeking(loop_extra: &str, objective: &str) -> Self {
         let dir = tempfile::tempdir().unwrap();
@@ -170,6 +178,19 @@ impl Rig {
 
     pub fn ticks(&self) -> u64 {
         self.status().and_then(|s| s["ticks"].as_u64()).unwrap_or(0)
+    }
+
+    /// The loop's events, newest first (reads must be open).
+    pub fn events(&self) -> Vec<serde_json::Value> {
+        let events = get_json(self.api(), "/api/v1/events?loop=bowl&limit=1000").expect("the events");
+        events.as_array().expect("a list of events").clone()
+    }
+
+    /// Waits until the loop has written a setpoint of its own (the plant starts at 2.0).
+    pub fn wait_writing(&self) {
+        wait_until("the loop is writing", Duration::from_secs(20), || {
+            self.setpoint().is_some_and(|v| v != 2.0)
+        });
     }
 
     pub fn with_mode(self, mode: &str) -> Self {
