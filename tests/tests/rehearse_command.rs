@@ -145,6 +145,36 @@ fn a_non_finite_objective_is_reported_and_never_written() {
 }
 
 #[test]
+fn a_loop_that_recovers_automatically_goes_on_seeking_from_where_the_plant_stands() {
+    let dir = tempfile::tempdir().unwrap();
+    // The plant starts at u = 1 (objective 2), outside the plausible range: the loop trips
+    // and writes safe (2.7, objective 9.82), recovers after 30 s, and then seeks u = 3.
+    let cfg = write_file(
+        dir.path(),
+        "auto.toml",
+        &config(&[(
+            "stale_after_s = 10",
+            "stale_after_s = 10\nobjective_range = [5.0, 20.0]\nrecover = \"auto\"\nrecover_after_s = 30",
+        )]),
+    );
+    let plant = write_file(dir.path(), "p.toml", &CLASSIC_PLANT.replace("initial = 2.7", "initial = 1.0"));
+    let report =
+        json(&rehearse(cfg.to_str().unwrap(), plant.to_str().unwrap(), &["--duration", "6000s", "--json"]));
+    let l = &report["loops"][0];
+    let transitions: Vec<&str> = l["events"]
+        .as_array()
+        .unwrap()
+        .iter()
+        .filter_map(|e| e["kind"].as_str())
+        .filter(|k| ["tripped", "recovered"].contains(k))
+        .collect();
+    assert_eq!(transitions, ["tripped", "recovered"]);
+    let estimate = l["final"]["u"]["estimate"].as_f64().unwrap();
+    // About 28 time constants of 207 s after the recovery: at the optimum.
+    assert!((estimate - 3.0).abs() < 0.05, "ended at {estimate}: {l}");
+}
+
+#[test]
 fn a_config_that_does_not_fit_the_plant_names_the_key() {
     let dir = tempfile::tempdir().unwrap();
     let cfg = write_file(dir.path(), "c.toml", &config(&[("holding_register = 0", "holding_register = 40")]));

@@ -115,16 +115,16 @@ impl Rehearsal {
                     });
                 }
             }
-            let read_back: Vec<Option<f64>> =
-                truth.plant_inputs().iter().map(|&pi| Some(model.inputs()[pi])).collect();
             let mut control = Control::new(l);
             // A rehearsal seeks whatever the start mode; a fault still trips it.
             let _ = control.ask(Mode::Seeking);
             let estimates: Vec<f64> = l
                 .inputs
                 .iter()
-                .zip(&read_back)
-                .map(|(i, r)| crate::seek::guard::initial_estimate(*r, i.bounds, i.safe))
+                .zip(truth.plant_inputs())
+                .map(|(i, &pi)| {
+                    crate::seek::guard::initial_estimate(Some(model.inputs()[pi]), i.bounds, i.safe)
+                })
                 .collect();
             control.start(0.0, &estimates);
             control.take_transitions();
@@ -198,6 +198,12 @@ impl LoopRun {
     }
 
     fn tick(&mut self, t: f64, duration: f64, plant: &mut Plant) -> anyhow::Result<()> {
+        if self.control.wants_read_back() {
+            // As the live loop does after a recovery: restart from what the plant holds.
+            let read_back: Vec<Option<f64>> =
+                self.truth.plant_inputs().iter().map(|&pi| Some(plant.inputs()[pi])).collect();
+            self.control.restart_from(&read_back);
+        }
         self.truth.read_tags(plant, &mut self.tag_values);
         let report = self.control.tick(
             self.tick,
