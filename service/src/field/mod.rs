@@ -35,8 +35,9 @@ impl Links {
             let timeout = Duration::from_millis(link.timeout_ms);
             match &link.kind {
                 LinkKind::ModbusTcp { address, unit } => {
-                    let m = ModbusLink::reporting_to(&link.name, address, *unit, timeout, reporting.clone())
-                        .with_backoff_cap(backoff_cap(config, &link.name));
+                    let cap = backoff_cap(config, &link.name);
+                    let m =
+                        ModbusLink::reporting_to(&link.name, address, *unit, timeout, cap, reporting.clone());
                     links.modbus.insert(link.name.clone(), m);
                 }
                 LinkKind::HttpGet { url } => {
@@ -48,15 +49,6 @@ impl Links {
             }
         }
         Ok(links)
-    }
-
-    pub fn modbus(&self, name: &str) -> Option<&ModbusLink> {
-        self.modbus.get(name)
-    }
-
-    /// Names of every link, for metrics that start at zero.
-    pub fn names(&self) -> impl Iterator<Item = &str> {
-        self.modbus.keys().chain(self.http.keys()).map(String::as_str)
     }
 }
 

@@ -16,7 +16,7 @@ use crate::report::Reporting;
 
 /// First wait before reconnecting after a failure; doubles per failure up to the cap.
 const BACKOFF_FIRST: Duration = Duration::from_millis(200);
-/// The longest wait, unless the link's loops tick faster (see [`ModbusLink::with_backoff_cap`]).
+/// The longest wait, unless the link's loops tick faster (see [`ModbusLink::reporting_to`]).
 pub const BACKOFF_CAP: Duration = Duration::from_secs(5);
 
 /// A cheap-to-clone handle on one Modbus/TCP server.
@@ -102,15 +102,19 @@ impl std::fmt::Debug for ModbusLink {
 impl ModbusLink {
     /// A link to `address` (`host:port`); nothing is connected until the first request.
     pub fn new(name: &str, address: &str, unit: u8, timeout: Duration) -> Self {
-        Self::reporting_to(name, address, unit, timeout, Reporting::default())
+        Self::reporting_to(name, address, unit, timeout, BACKOFF_CAP, Reporting::default())
     }
 
     /// A link that counts its requests in the metrics and records going down and up.
+    /// `backoff_cap` caps the reconnection backoff (never above 5 s), so that a link whose
+    /// loops tick faster is retried on every tick: a fallback write must reach the PLC on
+    /// the first tick it answers again.
     pub fn reporting_to(
         name: &str,
         address: &str,
         unit: u8,
         timeout: Duration,
+        backoff_cap: Duration,
         reporting: Reporting,
     ) -> Self {
         ModbusLink {
@@ -119,21 +123,11 @@ impl ModbusLink {
                 address: address.to_owned(),
                 unit,
                 timeout,
-                backoff_cap: BACKOFF_CAP,
+                backoff_cap: backoff_cap.min(BACKOFF_CAP),
                 reporting,
                 connection: Mutex::default(),
             }),
         }
-    }
-
-    /// Caps the reconnection backoff, so that a link whose loops tick faster than the
-    /// default cap is retried at least once per tick (a fallback write must reach the PLC
-    /// on the first tick it answers again).
-    pub fn with_backoff_cap(mut self, cap: Duration) -> Self {
-        if let Some(inner) = Arc::get_mut(&mut self.inner) {
-            inner.backoff_cap = cap.min(BACKOFF_CAP);
-        }
-        self
     }
 
     pub fn name(&self) -> &str {

@@ -166,11 +166,6 @@ impl History {
         Ok(History { pool, path: path.into(), writes_ok: Arc::new(std::sync::atomic::AtomicBool::new(true)) })
     }
 
-    /// The database file.
-    pub fn path(&self) -> &Path {
-        &self.path
-    }
-
     /// The sender loops and the API use, and the writer task that drains it.
     pub fn writer(
         &self,
@@ -307,20 +302,6 @@ impl History {
     /// lock, so a probe can never hold up the writer.
     pub fn writes_ok(&self) -> bool {
         self.writes_ok.load(std::sync::atomic::Ordering::Relaxed)
-    }
-
-    /// Whether a write succeeds right now: takes the write lock and makes
-    /// a change in a transaction that is then rolled back.
-    pub async fn check_writable(&self) -> Result<(), HistoryError> {
-        let mut tx = self.pool.begin_with("BEGIN IMMEDIATE").await?;
-        sqlx::query(
-            "INSERT INTO last_estimates (loop, input, estimate, at_ms) VALUES ('', '', 0, 0)
-             ON CONFLICT DO NOTHING",
-        )
-        .execute(&mut *tx)
-        .await?;
-        tx.rollback().await?;
-        Ok(())
     }
 }
 
