@@ -9,7 +9,6 @@ use std::time::Duration;
 
 use anyhow::Context;
 use tokio_util::sync::CancellationToken;
-use tokio_util::task::TaskTracker;
 
 use crate::api::{self, AccessList, ApiState};
 use crate::config::Config;
@@ -110,13 +109,11 @@ impl App {
         );
 
         let stop = CancellationToken::new();
-        let loops = TaskTracker::new();
         let mut handles = Vec::new();
         for (task, period) in tasks {
             let name = task.name().to_owned();
-            handles.push((name, loops.spawn(supervisor::run(task, period, stop.clone()))));
+            handles.push((name, tokio::spawn(supervisor::run(task, period, stop.clone()))));
         }
-        loops.close();
         let api =
             axum::serve(listener, api::router(state)).with_graceful_shutdown(stop.clone().cancelled_owned());
         let api = tokio::spawn(async move { api.await });
@@ -124,7 +121,7 @@ impl App {
         shutdown.await;
         tracing::info!("stopping: loops write their shutdown setpoints, history is flushed");
         stop.cancel();
-        loops.wait().await;
+        // Every loop writes its shutdown setpoints before the history is flushed.
         for (name, handle) in handles {
             // A loop that panicked has stopped writing; /readyz has said so since.
             if let Err(e) = handle.await {

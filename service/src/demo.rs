@@ -50,11 +50,17 @@ pub async fn run(options: &Options, stop: impl Future<Output = ()>) -> anyhow::R
             *address = plant_addr.to_string();
         }
     }
-    let scratch = tempfile::Builder::new()
-        .prefix("ridgeline-demo-")
-        .tempdir()
-        .context("cannot make a temporary folder")?;
-    let database = options.database.clone().unwrap_or_else(|| scratch.path().join("history.db"));
+    // History goes to a temporary folder, removed at the end, unless --database names a file.
+    let (database, _scratch) = match &options.database {
+        Some(path) => (path.clone(), None),
+        None => {
+            let scratch = tempfile::Builder::new()
+                .prefix("ridgeline-demo-")
+                .tempdir()
+                .context("cannot make a temporary folder")?;
+            (scratch.path().join("history.db"), Some(scratch))
+        }
+    };
     let app_options =
         app::Options { speed: options.speed, listen: options.listen, database: Some(database.clone()) };
     let app = App::build(&config, &app_options)
@@ -95,7 +101,6 @@ pub async fn run(options: &Options, stop: impl Future<Output = ()>) -> anyhow::R
     app.run_until(until).await?;
     let _ = stop_all.send(());
     plant_task.await.context("the simulated plant task failed")?.context("the simulated plant failed")?;
-    drop(scratch);
     Ok(())
 }
 

@@ -149,10 +149,7 @@ impl Metrics {
         for l in &config.loops {
             self.objective.with_label_values(&[&l.name]);
             self.tick_lateness_seconds.with_label_values(&[&l.name]);
-            for state in State::ALL {
-                let initial = if state.as_str() == l.start_mode.as_str() { 1.0 } else { 0.0 };
-                self.loop_state.with_label_values(&[&l.name, state.as_str()]).set(initial);
-            }
+            self.set_state(&l.name, State::of(l.start_mode));
             for reason in FALLBACK_REASONS {
                 self.fallbacks.with_label_values(&[l.name.as_str(), reason]);
             }

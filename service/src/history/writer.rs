@@ -225,7 +225,6 @@ impl Writer {
             return None;
         }
         let written = self.write_batch().await;
-        self.writes_ok.store(written.is_ok(), std::sync::atomic::Ordering::Relaxed);
         Some(written)
     }
 
@@ -314,8 +313,15 @@ impl Writer {
         }
     }
 
-    /// Adds what is queued to the pending batch, up to the caps, and writes it.
+    /// Adds what is queued to the pending batch, up to the caps, and writes it; what
+    /// `/readyz` reports follows the outcome.
     async fn write_batch(&mut self) -> Result<Written, HistoryError> {
+        let result = self.write_pending().await;
+        self.writes_ok.store(result.is_ok(), std::sync::atomic::Ordering::Relaxed);
+        result
+    }
+
+    async fn write_pending(&mut self) -> Result<Written, HistoryError> {
         while self.samples.len() < MAX_BATCH_SAMPLES {
             match self.samples_rx.try_recv() {
                 Ok(s) => self.samples.push(s),
@@ -433,7 +439,6 @@ impl Writer {
         let mut delay = FIRST_RETRY_DELAY;
         for attempt in 1..=WRITE_ATTEMPTS {
             let result = self.write_batch().await;
-            self.writes_ok.store(result.is_ok(), std::sync::atomic::Ordering::Relaxed);
             match result {
                 Ok(written) => {
                     if attempt > 1 {

@@ -104,10 +104,9 @@ impl PlantServer {
             async move { accept_tcp_connection(stream, peer, new_service) }
         };
         let on_process_error = |e| tracing::debug!(error = %e, "simulator connection ended with an error");
-        let stop = cancel.clone();
         let served = tokio::select! {
             r = server.serve(&on_connected, on_process_error) => r,
-            () = async { shutdown.await; stop.cancel(); } => Ok(()),
+            () = shutdown => Ok(()),
         };
         cancel.cancel();
         let _ = stepping.await;
