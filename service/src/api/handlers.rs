@@ -191,19 +191,11 @@ pub async fn samples(
     Ok(Json(rows.iter().map(sample_json).collect::<Vec<_>>()).into_response())
 }
 
-fn number(v: Option<f64>) -> Value {
-    v.filter(|x| x.is_finite()).map_or(Value::Null, |x| json!(x))
-}
-
+/// A stored sample as JSON; serde_json writes a value that is not finite as `null`.
 fn sample_json(row: &SampleRow) -> Value {
-    let inputs: serde_json::Map<String, Value> = row
-        .inputs
-        .iter()
-        .map(|(name, v)| {
-            (name.clone(), json!({"applied": number(v.applied), "estimate": number(v.estimate), "gradient": number(v.gradient)}))
-        })
-        .collect();
-    json!({"at": rfc3339(row.at_ms), "objective": number(row.objective), "state": row.state, "inputs": inputs})
+    let inputs: serde_json::Map<String, Value> =
+        row.inputs.iter().map(|(name, values)| (name.clone(), json!(values))).collect();
+    json!({"at": rfc3339(row.at_ms), "objective": row.objective, "state": row.state, "inputs": inputs})
 }
 
 /// One CSV row with the loop's inputs in config order; missing or non-finite values

@@ -203,9 +203,10 @@ pub fn router(state: ApiState) -> Router {
         .route("/api/v1/loops/{loop}/samples", get(handlers::samples))
         .route("/api/v1/events", get(handlers::events))
         .route("/", get(page::status_page))
+        // Before the counting layer, so that a 405 is counted with its route like any answer.
+        .method_not_allowed_fallback(not_allowed)
         .route_layer(middleware::from_fn_with_state(state.clone(), count_request))
         .fallback(unmatched)
-        .method_not_allowed_fallback(not_allowed)
         .with_state(state)
 }
 
@@ -218,14 +219,7 @@ async fn count_request(State(state): State<ApiState>, request: Request, next: Ne
     response
 }
 
-async fn not_allowed(
-    State(state): State<ApiState>,
-    matched: Option<MatchedPath>,
-    method: axum::http::Method,
-    uri: axum::http::Uri,
-) -> ApiError {
-    let route = matched.as_ref().map_or(UNMATCHED_ROUTE, MatchedPath::as_str);
-    state.metrics.http_requests.with_label_values(&[route, "405"]).inc();
+async fn not_allowed(method: axum::http::Method, uri: axum::http::Uri) -> ApiError {
     ApiError::MethodNotAllowed(format!("{} does not take {method}", uri.path()))
 }
 
@@ -273,6 +267,11 @@ mod tests {
                 "{method} {route}: {status} {body}"
             );
         }
+        // A method a route does not take is counted once, under the route's template.
+        let answer = client.post(format!("http://{address}/api/v1/loops")).send().await.unwrap();
+        assert_eq!(answer.status(), StatusCode::METHOD_NOT_ALLOWED);
+        let counted = r#"ridgeline_http_requests_total{route="/api/v1/loops",status="405"} 1"#;
+        assert!(metrics.render().contains(counted), "missing `{counted}`");
     }
 
     #[test]
