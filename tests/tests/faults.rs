@@ -72,7 +72,7 @@ fn a_cut_link_trips_to_fallback_and_safe_lands_on_the_first_tick_it_answers_agai
     eprintln!("measured: PLC back -> safe setpoint in the register in {to_safe:?}");
     // Source: issue requirement, the fallback value lands on the first tick the link answers.
     assert!(to_safe <= TICK + MEASURING, "{to_safe:?}");
-    let tripped = rig.events().into_iter().find(|e| e["kind"] == "tripped").expect("a trip event");
+    let tripped = rig.event("a trip event", |e| e["kind"] == "tripped");
     assert_eq!(tripped["detail"]["trip"], "stale");
     assert_eq!(tripped["actor"], "system");
 }
@@ -139,7 +139,7 @@ fn without_the_plcs_permit_nothing_is_written_and_its_return_restarts_bumpless()
     // far from the 2.0 where the loop's own estimate stood.
     assert!((first - 2.7).abs() <= 0.21, "bumpless: started next to the operator's 2.7, wrote {first}");
     assert_eq!(state(&rig), "seeking");
-    assert!(rig.events().iter().any(|e| e["kind"] == "permit_granted"));
+    rig.event("permit_granted", |e| e["kind"] == "permit_granted");
 }
 
 #[test]
@@ -162,7 +162,7 @@ fn manual_recovery_is_refused_with_409_while_the_fault_persists_and_accepted_aft
             && put_mode(&rig, "seeking").status == 200
     });
     assert_eq!(state(&rig), "seeking");
-    let recovered = rig.events().into_iter().find(|e| e["kind"] == "recovered").expect("a recovery event");
+    let recovered = rig.event("a recovery event", |e| e["kind"] == "recovered");
     assert_eq!(recovered["actor"], "night-shift");
 }
 
@@ -179,7 +179,7 @@ fn automatic_recovery_returns_to_seeking_after_the_healthy_interval() {
     let took = time_until_state(&rig, "seeking", Duration::from_secs(10));
     eprintln!("measured: PLC back -> seeking again (recover_after_s 1 s) in {took:?}");
     assert!(took >= Duration::from_millis(900), "not before the healthy interval: {took:?}");
-    assert!(rig.events().iter().any(|e| e["kind"] == "recovered" && e["actor"] == "system"));
+    rig.event("an automatic recovery", |e| e["kind"] == "recovered" && e["actor"] == "system");
 }
 
 #[test]
@@ -248,7 +248,7 @@ fn trips_before_it_could_start(behaviour: BadPlc, label: &str) {
     assert_eq!(status["fallback_reason"], "stale", "{status}");
     assert_eq!(status["inputs"][0]["estimate"], serde_json::Value::Null, "never started: {status}");
     assert_eq!(status["inputs"][0]["applied"], 1.0, "safe is what it tries to write: {status}");
-    assert!(rig.events().iter().any(|e| e["kind"] == "tripped" && e["detail"]["trip"] == "stale"));
+    rig.event("a stale trip", |e| e["kind"] == "tripped" && e["detail"]["trip"] == "stale");
     let before = status["ticks"].as_u64().unwrap();
     std::thread::sleep(Duration::from_millis(800));
     let after = rig.ticks();
@@ -285,7 +285,7 @@ fn a_link_cut_trips_a_loop_with_a_permit_too_and_safe_lands_once_the_plc_permits
     wait_until("the trip is recorded", Duration::from_secs(10), || {
         rig.status().is_some_and(|s| s["fallback_reason"] == "stale")
     });
-    assert!(rig.events().iter().any(|e| e["kind"] == "tripped" && e["detail"]["trip"] == "stale"));
+    rig.event("a stale trip", |e| e["kind"] == "tripped" && e["detail"]["trip"] == "stale");
     let _sim = rig.sim();
     wait_until("safe is in the register", Duration::from_secs(5), || rig.setpoint() == Some(1.0));
     assert_eq!(state(&rig), "fallback");

@@ -186,6 +186,17 @@ impl Rig {
         events.as_array().expect("a list of events").clone()
     }
 
+    /// Waits for the loop's newest event that `matches` (history is written in batches, a
+    /// moment after what happened) and returns it.
+    pub fn event(&self, what: &str, matches: impl Fn(&serde_json::Value) -> bool) -> serde_json::Value {
+        let mut found = None;
+        wait_until(&format!("{what} is in history"), Duration::from_secs(5), || {
+            found = self.events().into_iter().find(|e| matches(e));
+            found.is_some()
+        });
+        found.expect("found")
+    }
+
     /// Waits until the loop has written a setpoint of its own (the plant starts at 2.0).
     pub fn wait_writing(&self) {
         wait_until("the loop is writing", Duration::from_secs(20), || {
