@@ -42,6 +42,15 @@ pub struct InputState {
     pub gradient: f64,
 }
 
+impl InputState {
+    /// An input at rest at `estimate` (clamped into its bounds): applied without dither,
+    /// with no gradient yet.
+    fn at_rest(guard: InputGuard, estimate: f64) -> Self {
+        let estimate = guard.clamp(estimate);
+        InputState { guard, estimate, applied: estimate, gradient: 0.0 }
+    }
+}
+
 /// Whether the guard had to act on any input in a tick.
 #[derive(Debug, Clone, Copy, Default, PartialEq, Eq)]
 pub struct GuardActions {
@@ -62,10 +71,7 @@ impl Seeker {
         let inputs = guards
             .iter()
             .zip(estimates)
-            .map(|(&guard, &e)| {
-                let estimate = guard.clamp(e);
-                InputState { guard, estimate, applied: estimate, gradient: 0.0 }
-            })
+            .map(|(&guard, &e)| InputState::at_rest(guard, e))
             .collect::<Vec<_>>();
         Seeker { method, moves: vec![Move::default(); inputs.len()], inputs }
     }
@@ -125,9 +131,7 @@ impl Seeker {
     /// when a loop starts from the setpoints read back from the PLC.
     pub fn reset_estimates(&mut self, estimates: &[f64]) {
         for (input, &e) in self.inputs.iter_mut().zip(estimates) {
-            input.estimate = input.guard.clamp(e);
-            input.applied = input.estimate;
-            input.gradient = 0.0;
+            *input = InputState::at_rest(input.guard, e);
         }
     }
 
