@@ -191,16 +191,31 @@ fn the_heartbeat_increments_every_tick_and_wraps_after_65535() {
     let _sim = rig.sim();
     // The PLC's heartbeat word stands at 65533: the service goes on from there.
     assert!(write_holding_registers(rig.plant_port(), 400, &[65533]));
-    let _service = rig.service();
-    let mut seen = Vec::new();
-    wait_until("the heartbeat wrapped", Duration::from_secs(10), || {
-        if let Some(w) = read_holding_registers(rig.plant_port(), 400, 1)
-            && seen.last() != Some(&w[0])
-        {
-            seen.push(w[0]);
-        }
-        seen.contains(&2)
+    // The register is watched from before the service starts, ten times a tick, so no
+    // count goes unseen however long the start takes.
+    let port = rig.plant_port();
+    let seen = std::sync::Mutex::new(Vec::new());
+    let done = std::sync::atomic::AtomicBool::new(false);
+    let _service = std::thread::scope(|scope| {
+        scope.spawn(|| {
+            while !done.load(std::sync::atomic::Ordering::Relaxed) {
+                if let Some(w) = read_holding_registers(port, 400, 1) {
+                    let mut seen = seen.lock().unwrap();
+                    if seen.last() != Some(&w[0]) {
+                        seen.push(w[0]);
+                    }
+                }
+                std::thread::sleep(TICK / 10);
+            }
+        });
+        let service = rig.service();
+        wait_until("the heartbeat wrapped", Duration::from_secs(10), || {
+            seen.lock().unwrap().iter().any(|&v| v < 100)
+        });
+        done.store(true, std::sync::atomic::Ordering::Relaxed);
+        service
     });
+    let seen = seen.into_inner().unwrap();
     // Source: issue requirement, a u16 counter that wraps at 65535 -> 0.
     let from = seen.iter().position(|&v| v == 65534).expect("counting from the register's value");
     assert_eq!(&seen[from..from + 2], &[65534, 65535]);
