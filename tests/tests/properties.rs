@@ -148,6 +148,7 @@ mod states {
             (0.0..200.0f64).prop_map(|h| (Event::Healthy { healthy_s: h }, None)),
             Just((Event::PermitWithdrawn, None)),
             Just((Event::PermitGranted, None)),
+            Just((Event::PermitLost, Some(Trip::Stale))),
             (mode(), prop::option::of(trip())).prop_map(|(m, f)| (Event::Ask(m), f)),
         ]
     }
@@ -180,6 +181,10 @@ mod states {
                 }
                 if m.tripped.is_some() {
                     prop_assert!(matches!(m.state, State::Fallback | State::NoPermit), "{m:?}");
+                }
+                // A permit that cannot be read is a fault: a writing loop shows fallback.
+                if event == Event::PermitLost && matches!(m.mode, Mode::Seeking | Mode::Holding) {
+                    prop_assert!(m.state == State::Fallback && m.tripped.is_some(), "{before:?} lost its permit: {m:?}");
                 }
             }
         }
@@ -216,21 +221,22 @@ mod states {
         ]
     }
 
+    /// How a permit tag reads (for a loop that has one; others read `NotConfigured`).
     fn permit() -> impl Strategy<Value = Permit> {
         prop_oneof![
-            4 => Just(Permit::NotConfigured),
             4 => Just(Permit::Reads(1.0)),
             1 => Just(Permit::Reads(0.0)),
             1 => Just(Permit::Reads(f64::NAN)),
-            1 => Just(Permit::Unreadable),
+            2 => Just(Permit::Unreadable),
         ]
     }
 
-    fn config(on_trip: &str, recover: &str) -> ridgeline::config::LoopConfig {
+    fn config(on_trip: &str, recover: &str, with_permit: bool) -> ridgeline::config::LoopConfig {
+        let permit = if with_permit { "permit = \"y\"" } else { "" };
         let text = format!(
             "[links.plc]\nmodbus_tcp = \"127.0.0.1:5020\"\n[tags.y]\nlink = \"plc\"\ninput_register = 0\ntype = \"f32\"\n\
              [[loops]]\nname = \"l\"\nobjective = \"y\"\ndirection = \"maximize\"\ntick_s = 1.0\nstart_mode = \"seeking\"\n\
-             [loops.filter]\nhighpass_hz = 0.01\n[loops.watchdog]\nstale_after_s = 5\nobjective_range = [0, 100]\n\
+             {permit}\n[loops.filter]\nhighpass_hz = 0.01\n[loops.watchdog]\nstale_after_s = 5\nobjective_range = [0, 100]\n\
              on_trip = \"{on_trip}\"\n{recover}\n[[loops.inputs]]\nname = \"u\"\n\
              write = {{ link = \"plc\", holding_register = 0, type = \"f32\" }}\nlimits = [0, 6]\nbounds = [1, 5]\n\
              safe = 0.5\nmax_rate_per_s = 0.5\ndither_amplitude = 0.1\ndither_period_s = 20\ngain = 0.05\n"
@@ -242,26 +248,37 @@ mod states {
         #![proptest_config(ProptestConfig { cases: 500, ..ProptestConfig::default() })]
 
         #[test]
-        fn no_write_ever_leaves_the_operating_bounds_in_any_state(
+        fn no_write_ever_leaves_the_operating_bounds_in_any_state_nor_goes_out_without_a_permit(
             hold in any::<bool>(),
             auto in any::<bool>(),
+            with_permit in any::<bool>(),
             steps in prop::collection::vec(step(), 1..200),
         ) {
             let recover = if auto { "recover = \"auto\"\nrecover_after_s = 3" } else { "" };
-            let mut c = Control::new(&config(if hold { "hold" } else { "safe" }, recover));
+            let mut c = Control::new(&config(if hold { "hold" } else { "safe" }, recover, with_permit));
             let (mut now, mut tick) = (0.0, 0u64);
             let mut bounds = Range { min: 1.0, max: 5.0 };
+            // The PLC's last answer to the permit: when, and whether it was yes.
+            let mut answer: Option<(f64, bool)> = None;
+            let stands = |answer: Option<(f64, bool)>, now: f64, yes: bool| {
+                answer.is_some_and(|(at, said)| said == yes && now - at < 5.0)
+            };
             for s in steps {
                 match s {
                     Step::Tick { objective, permit, dt, writes_ok } => {
                         now += dt;
                         tick += 1;
+                        let permit = if with_permit { permit } else { Permit::NotConfigured };
+                        if let Permit::Reads(v) = permit {
+                            answer = Some((now, v.is_finite() && v != 0.0));
+                        }
                         let values = objective.map(|j| [j]);
                         let report = c.tick(tick, now, Reading { tags: values.as_ref().map(|v| &v[..]), permit });
                         if report.write {
                             let v = c.applied()[0];
                             prop_assert!(v.is_finite() && bounds.contains(v), "wrote {v} outside {bounds} in {:?}", c.state());
                             prop_assert!(c.state().writes());
+                            prop_assert!(!with_permit || stands(answer, now, true), "wrote without a permit that stands: {answer:?} at {now}");
                             c.note_setpoints(writes_ok, now);
                         }
                     }
@@ -282,9 +299,15 @@ mod states {
                         }
                     }
                 }
-                // What a stopping service would write stays inside the bounds too.
+                // What a stopping service would write stays inside the bounds too, and needs
+                // the permit as much as any other write.
                 if let Some(values) = c.shutdown_values() {
                     prop_assert!(values.iter().all(|&v| v.is_finite() && bounds.contains(v)), "{values:?} outside {bounds}");
+                    prop_assert!(!with_permit || stands(answer, now, true), "a shutdown write without a permit that stands");
+                }
+                // no_permit only ever means that the PLC answered 0 (and that answer stands).
+                if c.state() == State::NoPermit {
+                    prop_assert!(stands(answer, now, false), "no_permit without the PLC saying no: {answer:?} at {now}");
                 }
             }
         }

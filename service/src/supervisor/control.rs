@@ -26,7 +26,8 @@ pub enum Permit {
     /// The permit tag's value: permission while it is finite and not zero.
     Reads(f64),
     /// The permit tag could not be read. The last value read stands for `stale_after_s`;
-    /// after that, permission is withheld.
+    /// after that the loop trips (`stale`), and writes nothing until a permit is read
+    /// again: an unreadable permit is a fault of the link, not the PLC saying no.
     Unreadable,
 }
 
@@ -38,6 +39,8 @@ pub enum Cause {
     Recovered,
     PermitWithdrawn,
     PermitGranted,
+    /// The permit tag could not be read for `stale_after_s`.
+    PermitLost,
     /// An operator asked for a mode.
     Asked(Mode),
     /// An operator asked for a mode once the fault had cleared, which ended the trip.
@@ -51,6 +54,7 @@ impl Cause {
             Cause::Recovered => "recovered after a healthy interval".into(),
             Cause::PermitWithdrawn => "the PLC withdrew permission".into(),
             Cause::PermitGranted => "the PLC granted permission".into(),
+            Cause::PermitLost => "the permit tag cannot be read".into(),
             Cause::Asked(m) => format!("{m} asked for"),
             Cause::Acknowledged(m) => format!("{m} asked for once the fault had cleared"),
         }
@@ -99,9 +103,14 @@ pub struct Control {
     restart_filters: bool,
     objective_value: Option<f64>,
     last_read_s: f64,
-    /// When the permit tag was last read (never: minus infinity, so that a permit not
-    /// yet read withholds permission).
+    /// When the permit tag was last read (at first: when the loop was made, so a permit
+    /// that is never read trips like a stale objective).
     permit_read_s: f64,
+    /// Whether a permit read within `stale_after_s` stands (or the loop has no permit
+    /// tag). Nothing is written without one, not even the fallback.
+    permit_known: bool,
+    /// Whether the permit tag has gone unread for `stale_after_s` (a fault).
+    permit_stale: bool,
     /// Since when the setpoint registers have been failing (writes, or the read-back a
     /// start waits for), while the loop means to write.
     failing_since_s: Option<f64>,
@@ -133,7 +142,9 @@ impl Control {
             restart_filters: true,
             objective_value: None,
             last_read_s: 0.0,
-            permit_read_s: f64::NEG_INFINITY,
+            permit_read_s: 0.0,
+            permit_known: config.permit.is_none(),
+            permit_stale: false,
             failing_since_s: None,
             healthy_since_s: None,
             fault: None,
@@ -193,9 +204,9 @@ impl Control {
     }
 
     /// The watchdog's verdict at `now_s`, given what is wrong with this tick's objective:
-    /// the first fault that holds, if any.
+    /// the first fault that holds, if any. A permit that does not stand is stale too.
     fn fault_at(&self, now_s: f64, objective: Option<ObjectiveFault>) -> Option<Trip> {
-        if now_s - self.last_read_s >= self.stale_after_s {
+        if now_s - self.last_read_s >= self.stale_after_s || self.permit_stale {
             return Some(Trip::Stale);
         }
         match objective {
@@ -234,16 +245,27 @@ impl Control {
         Ok(())
     }
 
-    /// Whether the PLC permits writing at `now_s`, when the loop has a permit tag.
-    fn permit_at(&mut self, now_s: f64, permit: Permit) -> Option<bool> {
+    /// Takes in this tick's permit: whether one stands, and the event it makes, if any
+    /// (the PLC's answer changed, or no answer has stood for `stale_after_s`).
+    fn read_permit(&mut self, now_s: f64, permit: Permit) -> Option<(Event, Cause)> {
         match permit {
-            Permit::NotConfigured => None,
+            Permit::NotConfigured => {
+                (self.permit_known, self.permit_stale) = (true, false);
+                None
+            }
             Permit::Reads(v) => {
                 self.permit_read_s = now_s;
-                Some(v.is_finite() && v != 0.0)
+                (self.permit_known, self.permit_stale) = (true, false);
+                match (v.is_finite() && v != 0.0, self.machine.permitted) {
+                    (true, false) => Some((Event::PermitGranted, Cause::PermitGranted)),
+                    (false, true) => Some((Event::PermitWithdrawn, Cause::PermitWithdrawn)),
+                    _ => None,
+                }
             }
             Permit::Unreadable => {
-                Some(self.machine.permitted && now_s - self.permit_read_s < self.stale_after_s)
+                self.permit_stale = now_s - self.permit_read_s >= self.stale_after_s;
+                self.permit_known &= !self.permit_stale;
+                self.permit_stale.then_some((Event::PermitLost, Cause::PermitLost))
             }
         }
     }
@@ -265,15 +287,9 @@ impl Control {
         let objective_fault = checked.err().flatten();
         let quiet =
             TickReport { write: false, objective, fault: objective_fault, guard: GuardActions::default() };
+        let permit_event = self.read_permit(now_s, reading.permit);
         self.fault = self.fault_at(now_s, objective_fault);
-        if let Some(permitted) = self.permit_at(now_s, reading.permit)
-            && permitted != self.machine.permitted
-        {
-            let (event, cause) = if permitted {
-                (Event::PermitGranted, Cause::PermitGranted)
-            } else {
-                (Event::PermitWithdrawn, Cause::PermitWithdrawn)
-            };
+        if let Some((event, cause)) = permit_event {
             // Permit events are never refused.
             let _ = self.handle(event, cause);
         }
@@ -294,10 +310,12 @@ impl Control {
             // Failures of a loop that no longer writes say nothing about its next writes.
             self.failing_since_s = None;
         }
-        let waiting = !self.started || (self.wants_read_back && state.writes());
+        // Without a permit that stands, a writing state waits like one without a starting point.
+        let waiting = !self.started || (state.writes() && (self.wants_read_back || !self.permit_known));
         let report = match (state, checked) {
             (State::Stopped | State::NoPermit, _) => quiet,
-            // The fallback is written while waiting too: it needs no starting point.
+            (State::Fallback, _) if !self.permit_known => quiet,
+            // The fallback is written while waiting for a starting point too: it needs none.
             (State::Fallback, _) => match self.fallback() {
                 Some(guard) => TickReport { write: true, guard, ..quiet },
                 None => quiet,
@@ -381,6 +399,9 @@ impl Control {
     /// A sentence naming a fault that holds.
     fn describe(&self, trip: Trip) -> String {
         match trip {
+            Trip::Stale if self.permit_stale => {
+                format!("the permit tag has not been read for {} s or more", self.stale_after_s)
+            }
             Trip::Stale => {
                 format!("the objective's tags have not been read for {} s or more", self.stale_after_s)
             }
@@ -424,8 +445,10 @@ impl Control {
         self.machine.tripped
     }
 
+    /// Whether the PLC's permission stands: its last answer was yes, read within
+    /// `stale_after_s` (always, for a loop without a permit tag).
     pub fn permitted(&self) -> bool {
-        self.machine.permitted
+        self.machine.permitted && self.permit_known
     }
 
     pub fn inputs(&self) -> &[InputState] {
@@ -453,6 +476,9 @@ impl Control {
     /// estimates without dither or `safe` (each inside its bounds); `None` for a loop that
     /// is not writing.
     pub fn shutdown_values(&self) -> Option<Vec<f64>> {
+        if !self.permit_known {
+            return None;
+        }
         if self.machine.state == State::Fallback {
             return self.fallback_values();
         }
@@ -667,21 +693,64 @@ mod tests {
         assert_eq!(c.state(), State::Seeking);
     }
 
+    /// A loop whose PLC grants permission through tag `ok`.
+    fn with_permit(mode: &str) -> LoopConfig {
+        let mut c = config(mode, "");
+        c.permit = Some("ok".into());
+        c
+    }
+
+    fn permit(tags: Option<&[f64]>, permit: Permit) -> Reading<'_> {
+        Reading { tags, permit }
+    }
+
     #[test]
-    fn an_unreadable_permit_stands_for_stale_after_s_and_a_nan_permit_withholds() {
-        let mut c = Control::new(&config("seeking", ""));
+    fn an_unreadable_permit_stands_for_stale_after_s_then_trips_and_nothing_is_written_until_it_reads() {
+        let mut c = Control::new(&with_permit("seeking"));
         c.start(0.0, &[3.0]);
-        c.tick(0, 0.0, Reading { tags: Some(&[10.0]), permit: Permit::Reads(1.0) });
+        assert!(c.tick(0, 0.0, permit(Some(&[10.0]), Permit::Reads(1.0))).write);
         for n in 1..5 {
-            c.tick(n, n as f64, Reading { tags: Some(&[10.0]), permit: Permit::Unreadable });
+            let r = c.tick(n, n as f64, permit(Some(&[10.0]), Permit::Unreadable));
             assert_eq!(c.state(), State::Seeking, "tick {n}");
+            assert!(r.write, "the last permit read stands (tick {n})");
         }
-        c.tick(5, 5.0, Reading { tags: Some(&[10.0]), permit: Permit::Unreadable });
-        assert_eq!(c.state(), State::NoPermit);
-        c.tick(6, 6.0, Reading { tags: Some(&[10.0]), permit: Permit::Reads(1.0) });
-        assert_eq!(c.state(), State::Seeking);
-        c.tick(7, 7.0, Reading { tags: Some(&[10.0]), permit: Permit::Reads(f64::NAN) });
-        assert_eq!(c.state(), State::NoPermit);
+        for n in 5..8 {
+            let r = c.tick(n, n as f64, permit(Some(&[10.0]), Permit::Unreadable));
+            assert_eq!(
+                (c.state(), c.tripped()),
+                (State::Fallback, Some(Trip::Stale)),
+                "a fault, not a refusal"
+            );
+            assert!(!r.write, "nothing is written while no permit stands (tick {n})");
+            assert!(!c.permitted());
+            assert_eq!(c.shutdown_values(), None);
+        }
+        let refused = c.ask(Mode::Seeking).unwrap_err();
+        assert!(refused.0.contains("permit tag"), "{refused:?}");
+        let r = c.tick(8, 8.0, permit(Some(&[10.0]), Permit::Reads(1.0)));
+        assert!(r.write, "safe lands at once once the PLC permits");
+        assert_eq!((c.state(), c.applied()), (State::Fallback, &[2.0][..]));
+        let transitions = c.take_transitions();
+        assert_eq!(transitions.len(), 1, "one trip, no permit events: {transitions:?}");
+        assert_eq!(transitions[0].cause, Cause::Tripped(Trip::Stale));
+    }
+
+    #[test]
+    fn a_permit_read_again_as_zero_after_a_cut_is_no_permit_with_the_trip_remembered() {
+        let mut c = Control::new(&with_permit("seeking"));
+        c.start(0.0, &[3.0]);
+        c.tick(0, 0.0, permit(Some(&[10.0]), Permit::Reads(1.0)));
+        for n in 1..=5 {
+            c.tick(n, n as f64, permit(None, Permit::Unreadable));
+        }
+        assert_eq!(c.state(), State::Fallback);
+        let r = c.tick(6, 6.0, permit(Some(&[10.0]), Permit::Reads(0.0)));
+        assert!(!r.write);
+        assert_eq!((c.state(), c.tripped()), (State::NoPermit, Some(Trip::Stale)));
+        c.tick(7, 7.0, permit(Some(&[10.0]), Permit::Reads(f64::NAN)));
+        assert_eq!(c.state(), State::NoPermit, "a NaN permit withholds too");
+        assert!(c.tick(8, 8.0, permit(Some(&[10.0]), Permit::Reads(1.0))).write);
+        assert_eq!(c.state(), State::Fallback);
     }
 
     #[test]
@@ -696,12 +765,17 @@ mod tests {
     }
 
     #[test]
-    fn a_permit_never_read_withholds_permission() {
-        let mut c = Control::new(&config("seeking", ""));
+    fn a_permit_never_read_withholds_writes_and_trips_after_stale_after_s() {
+        let mut c = Control::new(&with_permit("seeking"));
         c.start(0.0, &[3.0]);
-        let r = c.tick(0, 0.0, Reading { tags: Some(&[10.0]), permit: Permit::Unreadable });
-        assert!(!r.write);
-        assert_eq!(c.state(), State::NoPermit);
+        for n in 0..5 {
+            let r = c.tick(n, n as f64, permit(Some(&[10.0]), Permit::Unreadable));
+            assert!(!r.write);
+            assert_eq!(c.state(), State::Seeking, "no_permit only means the PLC answered 0 (tick {n})");
+            assert!(!c.permitted());
+        }
+        assert!(!c.tick(5, 5.0, permit(Some(&[10.0]), Permit::Unreadable)).write);
+        assert_eq!((c.state(), c.tripped()), (State::Fallback, Some(Trip::Stale)));
     }
 
     #[test]

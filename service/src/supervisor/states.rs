@@ -2,9 +2,10 @@
 //!
 //! `mode` is what an operator asked for; `state` is what the loop does. A loop in a
 //! writing mode (seeking, holding) trips to `fallback` on a fault and stays there until
-//! its recovery condition holds; without the PLC's permission it is `no_permit` and writes
-//! nothing. A trip is remembered through `no_permit`, so permission returning to a
-//! tripped loop brings it back to `fallback`, not to seeking.
+//! its recovery condition holds; when the PLC answers 0 to its permit it is `no_permit`
+//! and writes nothing (a permit that cannot be read is a fault, not an answer). A trip
+//! is remembered through `no_permit`, so permission returning to a tripped loop brings it
+//! back to `fallback`, not to seeking.
 
 use crate::config::{Mode, Recover};
 
@@ -53,7 +54,7 @@ impl State {
 /// Why a loop trips to fallback.
 #[derive(Debug, Clone, Copy, PartialEq, Eq, Hash)]
 pub enum Trip {
-    /// No successful read of the objective's tags for `stale_after_s`.
+    /// No successful read of the objective's tags (or of the permit tag) for `stale_after_s`.
     Stale,
     /// The objective is NaN or infinite.
     NotFinite,
@@ -83,10 +84,14 @@ pub enum Event {
     Fault(Trip),
     /// No fault holds this tick, and none has for `healthy_s`.
     Healthy { healthy_s: f64 },
-    /// The PLC's permit tag reads 0 (or cannot be read).
+    /// The PLC's permit tag reads 0 (or not a number). A permit that cannot be read is
+    /// not this: it is a fault of the link ([`Trip::Stale`]).
     PermitWithdrawn,
     /// The PLC's permit tag reads non-zero again.
     PermitGranted,
+    /// The permit tag has not been read for `stale_after_s`: the PLC's last answer no
+    /// longer stands, and a writing loop trips (`stale`) whatever that answer was.
+    PermitLost,
     /// An operator asks for a mode (from fallback this is the acknowledgement).
     Ask(Mode),
 }
@@ -137,6 +142,11 @@ impl Machine {
             (NoPermit, Event::Fault(trip)) if self.tripped.is_none() => (NoPermit, Effect::Latch(trip)),
             (Seeking | Holding | Fallback, Event::PermitWithdrawn) => (NoPermit, Effect::None),
             (NoPermit, Event::PermitGranted) if self.tripped.is_some() => (Fallback, Effect::None),
+            // A permit that cannot be read is a fault of the link, not the PLC saying no.
+            (Seeking | Holding | NoPermit, Event::PermitLost) => match self.tripped {
+                Some(_) => (Fallback, Effect::None),
+                None => (Fallback, Effect::Latch(Trip::Stale)),
+            },
             (NoPermit, Event::PermitGranted) => (State::of(self.mode), Effect::Restart),
             // Automatic recovery after a healthy stretch; manual recovery only on request.
             (Fallback, Event::Healthy { healthy_s })
@@ -176,7 +186,7 @@ impl Machine {
         };
         match event {
             Event::PermitWithdrawn => self.permitted = false,
-            Event::PermitGranted => self.permitted = true,
+            Event::PermitGranted | Event::PermitLost => self.permitted = true,
             _ => {}
         }
         match effect {
@@ -248,6 +258,24 @@ mod tests {
             assert_eq!(m.state, State::of(mode));
             assert_eq!(m.tripped, None);
         }
+    }
+
+    #[test]
+    fn a_permit_lost_trips_a_writing_loop_and_ends_no_permit_with_the_trip_kept() {
+        let mut m = machine(Mode::Holding, Recover::Manual);
+        assert_eq!(m.on(Event::PermitLost, Some(Trip::Stale)), Ok(Effect::Latch(Trip::Stale)));
+        assert_eq!((m.state, m.tripped), (State::Fallback, Some(Trip::Stale)));
+
+        let mut m = machine(Mode::Seeking, Recover::Manual);
+        m.on(Event::PermitWithdrawn, None).unwrap();
+        m.on(Event::Fault(Trip::OutOfRange), Some(Trip::OutOfRange)).unwrap();
+        assert_eq!(m.on(Event::PermitLost, Some(Trip::Stale)), Ok(Effect::None));
+        assert_eq!((m.state, m.tripped), (State::Fallback, Some(Trip::OutOfRange)), "the first trip is kept");
+        assert!(m.permitted, "the PLC's old no no longer stands");
+
+        let mut m = machine(Mode::Observing, Recover::Manual);
+        m.on(Event::PermitLost, Some(Trip::Stale)).unwrap();
+        assert_eq!((m.state, m.tripped), (State::Observing, None));
     }
 
     #[test]

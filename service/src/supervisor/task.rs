@@ -310,6 +310,10 @@ impl LoopTask {
                         detail["note"] = serde_json::json!(
                             "nothing is written without the PLC's permission; the fallback applies when it returns"
                         );
+                    } else if !self.control.permitted() {
+                        detail["note"] = serde_json::json!(
+                            "the permit tag cannot be read: nothing is written until it is read again"
+                        );
                     }
                     let outside = self.control.safe_outside_bounds();
                     let writes: serde_json::Map<_, _> = self
@@ -334,6 +338,7 @@ impl LoopTask {
                 Cause::Recovered | Cause::Acknowledged(_) => "recovered",
                 Cause::PermitWithdrawn => "permit_withdrawn",
                 Cause::PermitGranted => "permit_granted",
+                Cause::PermitLost => "permit_lost",
                 // The mode_changed event of the request says it all.
                 Cause::Asked(_) => "",
             };
