@@ -13,7 +13,7 @@ use tokio_util::sync::CancellationToken;
 use crate::api::{self, AccessList, ApiState};
 use crate::config::Config;
 use crate::field::Links;
-use crate::history::{History, Writer, WriterSettings};
+use crate::history::{History, InstanceLock, Writer, WriterSettings};
 use crate::metrics::Metrics;
 use crate::report::Reporting;
 use crate::supervisor::{self, LoopHandle, LoopTask};
@@ -47,13 +47,17 @@ pub struct App {
     state: ApiState,
     writer: Writer,
     reporting: Reporting,
+    /// Held until the service has stopped: one running service per history store.
+    lock: InstanceLock,
 }
 
 impl App {
-    /// Opens the history database, binds the API listener and prepares every loop;
-    /// nothing talks to the plant yet.
+    /// Takes the history store's instance lock, opens the database, binds the API
+    /// listener and prepares every loop; nothing talks to the plant yet. Refused while
+    /// another service runs on the same history store.
     pub async fn build(config: &Config, options: &Options) -> anyhow::Result<App> {
         let database = options.database.clone().unwrap_or_else(|| config.service.database.clone());
+        let mut lock = InstanceLock::acquire(&database)?;
         let history = History::open(&database).await?;
         let metrics = Arc::new(Metrics::new(config));
         let settings =
@@ -65,6 +69,9 @@ impl App {
         let listener = tokio::net::TcpListener::bind(listen)
             .await
             .with_context(|| format!("cannot listen on {listen} for the API"))?;
+        if let Err(e) = lock.describe(listener.local_addr().ok()) {
+            tracing::warn!(lock = %lock.path().display(), error = %e, "cannot note the API address in the instance lock");
+        }
         let links = Links::new(config, &reporting).context("cannot set up the links")?;
         let mut tasks = Vec::new();
         let mut handles: Vec<LoopHandle> = Vec::new();
@@ -81,7 +88,7 @@ impl App {
         }
         let state =
             ApiState { loops: Arc::new(handles), history: Some(history), metrics, access: Arc::new(access) };
-        Ok(App { listener, tasks, state, writer, reporting })
+        Ok(App { listener, tasks, state, writer, reporting, lock })
     }
 
     /// Where the API listens (useful with port 0).
@@ -98,7 +105,7 @@ impl App {
     /// requests (those in flight get a few seconds), every loop writes its shutdown
     /// values, and the history writer flushes what is queued.
     pub async fn run_until(self, shutdown: impl Future<Output = ()>) -> anyhow::Result<()> {
-        let App { listener, tasks, state, writer, reporting } = self;
+        let App { listener, tasks, state, writer, reporting, lock } = self;
         let writer_stop = CancellationToken::new();
         let writing = tokio::spawn(writer.run(writer_stop.clone()));
         reporting.event(
@@ -136,6 +143,7 @@ impl App {
         drop(reporting);
         writer_stop.cancel();
         writing.await.context("the history writer failed")?;
+        drop(lock);
         Ok(())
     }
 }

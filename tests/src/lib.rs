@@ -357,6 +357,11 @@ impl Peer {
     pub fn name(&self) -> &str {
         &self.name
     }
+
+    /// The peer's process id.
+    pub fn id(&self) -> u32 {
+        self.child.id()
+    }
 }
 
 impl Drop for Peer {

@@ -6,7 +6,8 @@ use std::time::{Duration, Instant};
 
 use ridgeline::api::token_sha256;
 use ridgeline_tests::{
-    BadPlc, bad_plc, f32_words, http_request, read_holding_registers, wait_until, write_holding_registers,
+    BadPlc, bad_plc, f32_words, get_json, http_request, read_holding_registers, ridgeline, spawn_service,
+    wait_until, write_holding_registers,
 };
 
 use crate::rig::Rig;
@@ -354,4 +355,55 @@ fn a_running_loop_trips_when_the_plc_answers_after_twice_the_timeout() {
         "answering after twice the timeout",
         Duration::from_millis(600),
     );
+}
+
+#[test]
+fn a_second_service_on_the_same_history_refuses_to_start_and_names_the_first() {
+    let rig = Rig::new("");
+    let _sim = rig.sim();
+    let first = rig.service();
+    rig.wait_writing();
+    rig.event("the first start", |e| e["kind"] == "loop_started");
+    let second = ridgeline(&["run", "--config", rig.config.to_str().unwrap()]);
+    // Source: issue requirement: exit 1, and a sentence naming the running one (process
+    // id and API address).
+    assert_eq!(second.code, Some(1), "{}", second.stderr);
+    assert!(second.stderr.contains(&format!("process {}", first.id())), "{}", second.stderr);
+    assert!(second.stderr.contains(&format!("API at {}", rig.api())), "{}", second.stderr);
+    // The second never started a loop: one start in history, and the first runs on.
+    let starts = rig.events().iter().filter(|e| e["kind"] == "loop_started").count();
+    assert_eq!(starts, 1);
+    let ticks = rig.ticks();
+    wait_until("the first service ticks on", Duration::from_secs(5), || rig.ticks() > ticks);
+}
+
+#[test]
+fn two_services_with_their_own_histories_on_one_plc_see_a_link_conflict_on_the_heartbeat() {
+    let heartbeat = "[loops.heartbeat]\nlink = \"plc\"\nholding_register = 400\n\n[[loops.inputs]]";
+    let rig = Rig::new("").edit("[[loops.inputs]]", heartbeat);
+    let _sim = rig.sim();
+    let _first = rig.service();
+    rig.wait_writing();
+    // The same loop in a config of its own, with a history of its own: no lock can see it.
+    let text = std::fs::read_to_string(&rig.config).unwrap();
+    let other_db = rig.dir.path().join("other").join("ridgeline.db");
+    let text = text.replace(&rig.database().display().to_string(), &other_db.display().to_string());
+    let other_config = ridgeline_tests::write_file(rig.dir.path(), "other.toml", &text);
+    let (_second, second_api) = spawn_service(&other_config);
+    let conflicts = |api| {
+        get_json(api, "/api/v1/events?limit=1000")
+            .and_then(|e| e.as_array().cloned())
+            .unwrap_or_default()
+            .into_iter()
+            .filter(|e| e["kind"] == "link_conflict")
+            .collect::<Vec<_>>()
+    };
+    let mut found = Vec::new();
+    wait_until("a link_conflict event", Duration::from_secs(20), || {
+        found = [rig.api(), second_api].into_iter().flat_map(conflicts).collect();
+        !found.is_empty()
+    });
+    let detail = &found[0]["detail"];
+    assert_eq!(detail["holding_register"], 400, "{detail}");
+    assert_ne!(detail["expected"], detail["found"], "{detail}");
 }

@@ -115,7 +115,7 @@ pub fn document() -> Value {
                         "id": {"type": "integer"},
                         "at": {"type": "string", "format": "date-time"},
                         "loop": {"type": ["string", "null"]},
-                        "kind": {"type": "string", "description": "mode_changed, bounds_changed, tripped, recovered, permit_withdrawn, permit_granted, permit_lost, loop_started, loop_stopped, link_down, link_up, service_started, service_stopped"},
+                        "kind": {"type": "string", "description": "mode_changed, bounds_changed, tripped, recovered, permit_withdrawn, permit_granted, permit_lost, link_conflict, loop_started, loop_stopped, link_down, link_up, service_started, service_stopped"},
                         "detail": {"description": "JSON detail of the event."},
                         "actor": {"type": "string", "description": "The token's name, or \"system\"."}
                     }

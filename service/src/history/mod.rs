@@ -1,5 +1,6 @@
 //! The history store: samples, events and last estimates in SQLite, the only place that talks SQL.
 
+mod lock;
 mod time;
 mod writer;
 
@@ -17,6 +18,7 @@ use sqlx::sqlite::{
     SqliteConnectOptions, SqliteJournalMode, SqlitePool, SqlitePoolOptions, SqliteRow, SqliteSynchronous,
 };
 
+pub use lock::{InstanceLock, LockError};
 pub use time::{now_ms, parse_rfc3339, rfc3339};
 pub use writer::{HistorySender, Writer, WriterSettings, Written};
 

@@ -99,6 +99,11 @@ pub struct LoopTask {
     last_tick: Option<u64>,
     skipped_ticks: u64,
     heartbeat: u16,
+    /// The heartbeat value last written successfully, which the register should still
+    /// hold at the next tick.
+    heartbeat_written: Option<u16>,
+    /// Whether the heartbeat register was last found changed by another writer.
+    heartbeat_conflict: bool,
     /// Whether the last write of each input failed, so each failure is logged once.
     write_failing: Vec<bool>,
     read_failing: bool,
@@ -139,6 +144,8 @@ impl LoopTask {
             last_tick: None,
             skipped_ticks: 0,
             heartbeat: 0,
+            heartbeat_written: None,
+            heartbeat_conflict: false,
             read_failing: false,
         };
         (task, LoopHandle { config: loop_config, status: receiver, commands: commands_in })
@@ -201,14 +208,48 @@ impl LoopTask {
             self.control.note_setpoints(all_ok, now_s);
         }
         if self.config.heartbeat.is_some() && self.control.is_started() {
+            self.check_heartbeat().await;
             // A failed heartbeat is a link error (counted and logged by the link), not a trip.
-            let _ = self.io.write_heartbeat(self.heartbeat).await;
+            let written = self.io.write_heartbeat(self.heartbeat).await.is_ok();
+            self.heartbeat_written = written.then_some(self.heartbeat);
             self.heartbeat = self.heartbeat.wrapping_add(1);
         }
         self.report_transitions("system");
         self.publish();
         self.record(&report);
         report
+    }
+
+    /// Checks that the heartbeat register still holds the value this loop wrote last. If
+    /// it does not, something else writes it: most likely a second optimizer on the same
+    /// PLC registers (another Ridgeline with a config of its own), which no lock can see.
+    /// Recorded once per conflict (`link_conflict`), and once more when it ends.
+    async fn check_heartbeat(&mut self) {
+        let Some(expected) = self.heartbeat_written else { return };
+        let Some(Ok(found)) = self.io.read_heartbeat().await else { return };
+        let conflict = found != expected;
+        if conflict == self.heartbeat_conflict {
+            return;
+        }
+        self.heartbeat_conflict = conflict;
+        let Some(h) = &self.config.heartbeat else { return };
+        if conflict {
+            tracing::warn!(
+                r#loop = %self.name, link = %h.link, register = h.holding_register, expected, found,
+                "the heartbeat register was changed by another writer: is a second optimizer writing this PLC?"
+            );
+            self.reporting.event(
+                Some(&self.name),
+                "link_conflict",
+                serde_json::json!({
+                    "link": h.link, "holding_register": h.holding_register, "expected": expected, "found": found,
+                    "note": "another writer changed the heartbeat register; check that no second optimizer writes these registers",
+                }),
+                "system",
+            );
+        } else {
+            tracing::info!(r#loop = %self.name, link = %h.link, "the heartbeat register counts on from this loop's writes again");
+        }
     }
 
     /// Reads every input's setpoint back from the PLC.
