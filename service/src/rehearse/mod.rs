@@ -74,7 +74,6 @@ struct LoopRun {
     // Reused every tick so the hot path does not allocate.
     tag_values: Vec<f64>,
     bounds: Vec<Range>,
-    applied: Vec<f64>,
     optimum: Vec<f64>,
 }
 
@@ -138,7 +137,6 @@ impl Rehearsal {
                 trace: None,
                 tag_values: vec![0.0; l.objective.names().len()],
                 bounds: l.inputs.iter().map(|i| i.bounds).collect(),
-                applied: vec![0.0; l.inputs.len()],
                 optimum: vec![0.0; l.inputs.len()],
             });
         }
@@ -227,13 +225,12 @@ impl LoopRun {
         self.stats.rate_limited_ticks += u64::from(report.guard.rate_limited);
 
         // Score against the plant's true optimum at this moment.
-        for ((b, a), input) in self.bounds.iter_mut().zip(&mut self.applied).zip(self.control.inputs()) {
+        for (b, input) in self.bounds.iter_mut().zip(self.control.inputs()) {
             *b = input.guard.bounds;
-            *a = input.applied;
         }
         let (best, optimum) = self.truth.optimum(t, plant.inputs(), &self.bounds);
         self.optimum.copy_from_slice(optimum);
-        let achieved = self.truth.objective_at(&self.applied);
+        let achieved = self.truth.delivered(plant);
 
         // An optimum within a dither amplitude of a bound counts as reached when the
         // estimate is as close to it as the dither lets it be.

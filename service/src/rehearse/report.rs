@@ -22,9 +22,10 @@ pub struct LoopReport {
     /// the optimum is within a dither amplitude of a bound); `None` when the run ended
     /// outside that band.
     pub settle_time_s: Option<f64>,
-    /// Mean `|J(optimum) - J(applied)|` on the noise-free static map over the last quarter.
-    /// The optimum is the best objective over the operating bounds among setpoints whose
-    /// objective is finite and inside the watchdog's plausible range.
+    /// Mean `|J(optimum) - J(delivered)|` over the last quarter. `J(optimum)` is the best
+    /// objective on the noise-free static map over the operating bounds, among setpoints
+    /// whose objective is finite and inside the watchdog's plausible range; `J(delivered)`
+    /// is the objective the plant gives without its noise, after its lag and dead time.
     pub mean_loss: Option<f64>,
     /// `mean_loss` over the mean `|J(optimum)|` of the same ticks.
     pub relative_loss: Option<f64>,

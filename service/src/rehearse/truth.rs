@@ -146,10 +146,18 @@ impl Truth {
         (best, &self.optimum)
     }
 
-    /// The noise-free objective with the loop's inputs at `setpoints`, at the time and
-    /// other inputs of the last [`Truth::optimum`] call.
-    pub fn objective_at(&mut self, setpoints: &[f64]) -> f64 {
-        self.map.at(setpoints)
+    /// The objective as the plant delivers it now, without its noise: the loop's objective
+    /// over the plant's noise-free outputs, after their lag and dead time. What the process
+    /// really gives, which on a plant with dynamics is not the static map at the setpoint.
+    pub fn delivered(&mut self, plant: &Plant) -> f64 {
+        let map = &mut self.map;
+        for (value, source) in map.tag_values.iter_mut().zip(&map.sources) {
+            *value = match *source {
+                Source::Output(k) => plant.output_noise_free(k),
+                Source::Input(i) => plant.inputs()[i],
+            };
+        }
+        map.objective.eval(&map.tag_values)
     }
 }
 

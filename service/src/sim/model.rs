@@ -1,5 +1,7 @@
 //! A plant model stepped in fixed time steps: static map, dead time, first-order lag
-//! (exact discretisation for inputs held over a step) and seeded Gaussian noise.
+//! (exact discretisation for inputs held over a step) and seeded Gaussian noise. An
+//! output may use outputs listed before it, which lets a model put a curved map after a
+//! lag (the objective as a function of where the process has got to).
 
 use std::collections::VecDeque;
 
@@ -15,6 +17,9 @@ enum Var {
     Input(usize),
     Drift(usize),
     Time,
+    /// An output listed before: its steady state on the static map, its lagged value
+    /// (without noise) in the running plant.
+    Output(usize),
 }
 
 /// The noise-free steady-state value of each output for given inputs at a set time:
@@ -27,6 +32,8 @@ pub struct StaticMap {
     drifts: Vec<f64>,
     t_s: f64,
     scratch: Vec<f64>,
+    /// Steady state of each output that a later one uses, filled on the way.
+    outputs: Vec<f64>,
 }
 
 impl StaticMap {
@@ -38,11 +45,14 @@ impl StaticMap {
                 o.expression
                     .names()
                     .iter()
-                    .map(|name| match (spec.input(name), spec.drifts.iter().position(|d| &d.name == name)) {
-                        (Some(i), _) => Var::Input(i),
-                        (None, Some(d)) => Var::Drift(d),
-                        // Validation leaves only `t_s`.
-                        (None, None) => Var::Time,
+                    .map(|name| {
+                        match (spec.input(name), spec.drifts.iter().position(|d| &d.name == name), spec.output(name)) {
+                            (Some(i), ..) => Var::Input(i),
+                            (None, Some(d), _) => Var::Drift(d),
+                            (None, None, Some(k)) => Var::Output(k),
+                            // Validation leaves only `t_s`.
+                            (None, None, None) => Var::Time,
+                        }
                     })
                     .collect()
             })
@@ -54,6 +64,7 @@ impl StaticMap {
             drifts: vec![0.0; spec.drifts.len()],
             t_s: 0.0,
             scratch: vec![0.0; widest],
+            outputs: vec![0.0; spec.outputs.len()],
         };
         map.set_time(0.0);
         map
@@ -73,12 +84,28 @@ impl StaticMap {
 
     /// Output `k` at steady state for these input values, at the time last set.
     pub fn output(&mut self, k: usize, inputs: &[f64]) -> f64 {
+        // Outputs this one uses come first (validation allows only earlier ones).
+        for n in 0..self.vars[k].len() {
+            if let Var::Output(j) = self.vars[k][n] {
+                self.outputs[j] = self.output(j, inputs);
+            }
+        }
+        let outputs = std::mem::take(&mut self.outputs);
+        let value = self.output_with(k, inputs, |j| outputs[j]);
+        self.outputs = outputs;
+        value
+    }
+
+    /// Output `k`'s expression with these inputs, the drifts and time last set, and
+    /// `output(j)` for each output it uses.
+    fn output_with(&mut self, k: usize, inputs: &[f64], output: impl Fn(usize) -> f64) -> f64 {
         let vars = &self.vars[k];
         for (slot, var) in self.scratch.iter_mut().zip(vars) {
             *slot = match *var {
                 Var::Input(i) => inputs[i],
                 Var::Drift(d) => self.drifts[d],
                 Var::Time => self.t_s,
+                Var::Output(j) => output(j),
             };
         }
         self.spec.outputs[k].expression.eval(&self.scratch[..vars.len()])
@@ -154,11 +181,19 @@ impl Plant {
         self.outputs[k].measured
     }
 
+    /// Output `k` now without its noise: what the process delivers, lagged and delayed.
+    pub fn output_noise_free(&self, k: usize) -> f64 {
+        self.outputs[k].lagged
+    }
+
     /// Advances by one step with the inputs held.
     pub fn step(&mut self) {
         self.map.set_time(self.time_s());
-        for (k, out) in self.outputs.iter_mut().enumerate() {
-            let now = self.map.output(k, &self.inputs);
+        for k in 0..self.outputs.len() {
+            // An output that uses earlier ones sees them as they are now: lagged, no noise.
+            let lagged = &self.outputs;
+            let now = self.map.output_with(k, &self.inputs, |j| lagged[j].lagged);
+            let out = &mut self.outputs[k];
             let delayed = match out.dead_time.pop_front() {
                 Some(old) => {
                     out.dead_time.push_back(now);
@@ -225,6 +260,24 @@ mod tests {
         assert_eq!(p.output(0), 2.0);
         p.step();
         assert_eq!(p.output(0), 6.0);
+    }
+
+    #[test]
+    fn an_output_may_curve_the_lagged_value_of_an_earlier_one() {
+        let text = "step_s = 0.5\n[[inputs]]\nname = \"u\"\ninitial = 1.0\nholding_register = 0\n\
+                    [[outputs]]\nname = \"x\"\ninput_register = 0\nexpression = \"u\"\nlag_s = 4\n\
+                    [[outputs]]\nname = \"j\"\ninput_register = 2\nexpression = \"10 - (x - 3)^2\"\n";
+        let spec = parse(text, "test").expect("valid plant");
+        let mut p = Plant::new(&spec);
+        assert_eq!(p.output(1), 6.0, "at rest: the map of the steady state");
+        p.set_input(0, 3.0);
+        for _ in 0..8 {
+            p.step();
+        }
+        // Source: exact solution of the lag as above, then the map: x = 3 - 2 e^{-1}.
+        let x = 3.0 - 2.0 * (-1.0f64).exp();
+        assert!((p.output(1) - (10.0 - (x - 3.0).powi(2))).abs() < 1e-12);
+        assert_eq!(StaticMap::new(&spec).output(1, &[2.0]), 9.0);
     }
 
     #[test]

@@ -47,6 +47,8 @@ impl Drift {
 
 /// A measured value, served at an input register as f32 (big word order): the
 /// expression's value, delayed by the dead time, through a first-order lag, plus noise.
+/// The expression may use outputs listed before this one (their lagged value, without
+/// their noise).
 #[derive(Debug, Clone)]
 pub struct PlantOutput {
     pub name: String,
@@ -188,11 +190,16 @@ fn validate(spec: &PlantSpec, p: &Problems) {
     for (i, o) in spec.outputs.iter().enumerate() {
         let path = format!("outputs[{i}]");
         for (n, name) in o.expression.names().iter().enumerate() {
-            if name != TIME && spec.input(name).is_none() && !spec.drifts.iter().any(|d| &d.name == name) {
+            let earlier_output = spec.outputs[..i].iter().any(|e| &e.name == name);
+            if name != TIME
+                && spec.input(name).is_none()
+                && !spec.drifts.iter().any(|d| &d.name == name)
+                && !earlier_output
+            {
                 p.at(
                     &format!("{path}.expression"),
                     format!(
-                        "`{name}` at column {} is not an input, a drift or `{TIME}`",
+                        "`{name}` at column {} is not an input, a drift, an output listed before this one, or `{TIME}`",
                         o.expression.name_column(n)
                     ),
                 );
