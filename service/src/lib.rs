@@ -24,6 +24,8 @@
 //! - [`report`]: where metrics and history events go, shared by links and loops.
 //! - [`rehearse`]: offline runs of configured loops against a plant model, scored
 //!   against the true optimum, with report, CSV and SVG plot.
+//! - [`tune`]: commissioning: fit the plant from a record of steps, recommend a tuning,
+//!   and prove it by rehearsal. The fit and the recommendation are pure.
 
 pub mod api;
 pub mod app;
@@ -39,3 +41,4 @@ pub mod report;
 pub mod seek;
 pub mod sim;
 pub mod supervisor;
+pub mod tune;

@@ -31,12 +31,14 @@ pub struct LoopSummary {
     pub inputs: Vec<InputSummary>,
 }
 
-/// Averaged convergence time constant of the error for `J = J* - c (u - u*)^2`, with the
-/// hint being `|d2J/du2| = 2c`: the rate is `lambda = 2 gain c ReH` and per tick the error
-/// shrinks by `1 - T lambda`. `None` past `T lambda >= 1`, where averaging says nothing.
-pub fn time_constant_s(tick_s: f64, gain: f64, curvature: f64, reh: f64) -> Option<f64> {
-    let per_tick = tick_s * gain * curvature * reh;
-    (per_tick < 1.0).then(|| -tick_s / (1.0 - per_tick).ln())
+/// Averaged convergence time constant of the error for `J = J* - c (u - u*)^2`, with
+/// `curvature = |d2J/du2| = 2c`: the rate is `lambda = 2 gain c factor` and per tick the
+/// error shrinks by `1 - T lambda`. `factor` is ReH for a static plant, `|G| |H| cos(phi)`
+/// behind a plant with dynamics. `None` unless `0 < T lambda < 1`, where averaging says
+/// nothing or the loop runs away.
+pub fn time_constant_s(tick_s: f64, gain: f64, curvature: f64, factor: f64) -> Option<f64> {
+    let per_tick = tick_s * gain * curvature * factor;
+    (per_tick > 0.0 && per_tick < 1.0).then(|| -tick_s / (1.0 - per_tick).ln())
 }
 
 pub fn summarize(config: &Config) -> Vec<LoopSummary> {
