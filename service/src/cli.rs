@@ -10,9 +10,11 @@ use std::time::{Duration, Instant};
 use anyhow::Context;
 use clap::{Parser, Subcommand};
 
+use crate::config::Direction;
 use crate::config::{self, FileProblems, LogFormat};
 use crate::rehearse::{self, Options, Rehearsal};
 use crate::sim;
+use crate::tune::{self, Request, TuneError};
 
 #[derive(Debug, Parser)]
 #[command(
@@ -90,6 +92,37 @@ pub enum Command {
         #[arg(long)]
         json: bool,
     },
+    /// Fit the plant from a record of steps, recommend a tuning and prove it by rehearsal.
+    Tune {
+        /// The record: the API's samples CSV, or any CSV with `at` or `t_s`, `objective`
+        /// and `<input>.applied` columns.
+        #[arg(long, value_name = "FILE.csv")]
+        samples: PathBuf,
+        /// The input that was stepped.
+        #[arg(long, value_name = "NAME")]
+        input: String,
+        /// The service config, for the loop's tick, bounds, direction and rate limit.
+        #[arg(long, value_name = "FILE", requires = "loop_name")]
+        config: Option<PathBuf>,
+        /// The loop in --config.
+        #[arg(long = "loop", value_name = "NAME", requires = "config")]
+        loop_name: Option<String>,
+        /// Default: the loop's, else the way the objective curves.
+        #[arg(long, value_parser = ["maximize", "minimize"])]
+        direction: Option<String>,
+        /// Wanted convergence time constant, like 20m (default: 10 dither periods).
+        #[arg(long, value_name = "DURATION", value_parser = parse_duration_s)]
+        time_constant: Option<f64>,
+        /// Largest steady loss the dither may cost (default: the objective's noise).
+        #[arg(long, value_name = "X", value_parser = parse_positive)]
+        max_loss: Option<f64>,
+        /// Write the fitted plant as a plant-model file, to rehearse against.
+        #[arg(long, value_name = "FILE")]
+        plant_out: Option<PathBuf>,
+        /// Print the result as JSON.
+        #[arg(long)]
+        json: bool,
+    },
 }
 
 /// Exit status for an invalid config or arguments.
@@ -113,6 +146,27 @@ pub fn run(cli: Cli) -> ExitCode {
             plot.as_deref(),
             json,
         ),
+        Command::Tune {
+            samples,
+            input,
+            config,
+            loop_name,
+            direction,
+            time_constant,
+            max_loss,
+            plant_out,
+            json,
+        } => {
+            let request = Request {
+                input,
+                direction: direction
+                    .map(|d| if d == "maximize" { Direction::Maximize } else { Direction::Minimize }),
+                time_constant_s: time_constant,
+                max_loss,
+                ..Request::default()
+            };
+            tune(&samples, request, config.as_deref().zip(loop_name.as_deref()), plant_out.as_deref(), json)
+        }
     }
 }
 
@@ -196,6 +250,83 @@ fn rehearse(
         }
         if !json {
             println!("plot written to {}", path.display());
+        }
+    }
+    ExitCode::SUCCESS
+}
+
+/// `ridgeline tune`: bad data or a fit that does not justify a tuning is exit 2 with the
+/// sentence that says why; nothing is printed that the fit cannot back.
+fn tune(
+    samples: &Path,
+    mut request: Request,
+    the_loop: Option<(&Path, &str)>,
+    plant_out: Option<&Path>,
+    json: bool,
+) -> ExitCode {
+    if let Some((path, name)) = the_loop {
+        let config = match config::load(path) {
+            Ok(c) => c,
+            Err(problems) => return report_problems(&problems),
+        };
+        let Some(l) = config.loops.iter().find(|l| l.name == name) else {
+            let names: Vec<&str> = config.loops.iter().map(|l| l.name.as_str()).collect();
+            eprintln!("{}: no loop `{name}` (its loops: {})", path.display(), names.join(", "));
+            return ExitCode::from(INVALID);
+        };
+        let Some(input) = l.inputs.iter().find(|i| i.name == request.input) else {
+            let names: Vec<&str> = l.inputs.iter().map(|i| i.name.as_str()).collect();
+            eprintln!("loop `{name}` has no input `{}` (its inputs: {})", request.input, names.join(", "));
+            return ExitCode::from(INVALID);
+        };
+        request.tick_s = Some(l.tick_s);
+        request.bounds = Some(input.bounds);
+        request.direction = request.direction.or(Some(l.direction));
+        request.configured_rate_per_s = Some(input.max_rate_per_s);
+    }
+    let text = match std::fs::read_to_string(samples) {
+        Ok(t) => t,
+        Err(e) => {
+            eprintln!("cannot read {}: {e}", samples.display());
+            return ExitCode::from(INVALID);
+        }
+    };
+    let record = match tune::read_csv(&text, &request.input) {
+        Ok(r) => r,
+        Err(e) => {
+            eprintln!("{}: {e}", samples.display());
+            return ExitCode::from(INVALID);
+        }
+    };
+    let result = match tune::tune(&record, &request) {
+        Ok(r) => r,
+        Err(e @ TuneError::Proof(_)) => {
+            eprintln!("{e}");
+            return ExitCode::from(FAILED);
+        }
+        Err(e) => {
+            eprintln!("{}: no tuning: {e}", samples.display());
+            return ExitCode::from(INVALID);
+        }
+    };
+    if let Some(path) = plant_out
+        && let Err(e) = std::fs::write(path, &result.plant_toml)
+    {
+        eprintln!("cannot write {}: {e}", path.display());
+        return ExitCode::from(FAILED);
+    }
+    if json {
+        match serde_json::to_string_pretty(&result) {
+            Ok(text) => println!("{text}"),
+            Err(e) => {
+                eprintln!("could not write the result as JSON: {e}");
+                return ExitCode::from(FAILED);
+            }
+        }
+    } else {
+        println!("{result}");
+        if let Some(path) = plant_out {
+            println!("fitted plant written to {}", path.display());
         }
     }
     ExitCode::SUCCESS

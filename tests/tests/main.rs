@@ -16,3 +16,4 @@ mod properties;
 mod rehearse_command;
 mod rig;
 mod several_inputs;
+mod tune_command;

@@ -46,7 +46,11 @@ impl StaticMap {
                     .names()
                     .iter()
                     .map(|name| {
-                        match (spec.input(name), spec.drifts.iter().position(|d| &d.name == name), spec.output(name)) {
+                        match (
+                            spec.input(name),
+                            spec.drifts.iter().position(|d| &d.name == name),
+                            spec.output(name),
+                        ) {
                             (Some(i), ..) => Var::Input(i),
                             (None, Some(d), _) => Var::Drift(d),
                             (None, None, Some(k)) => Var::Output(k),

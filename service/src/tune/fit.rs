@@ -338,9 +338,7 @@ pub fn fit(record: &Record) -> Result<Fit, FitError> {
     };
     problem.theta = initial_guess(record, &runs, &problem);
     let (problem, report) = LevenbergMarquardt::new().with_patience(200).minimize(problem);
-    if !report.termination.was_successful() {
-        return Err(FitError::NotConverged { reason: format!("{:?}", report.termination) });
-    }
+    let converged = report.termination.was_successful();
     let theta = problem.theta;
     let (projection, residuals) = problem
         .project(&theta)
@@ -378,11 +376,6 @@ pub fn fit(record: &Record) -> Result<Fit, FitError> {
         settled_residuals.extend(settled.iter().filter_map(|k| residual_of.get(k)));
         levels.push(Level { setpoint: record.u[run.start], from_s, to_s, settled_objective });
     }
-    let after_a_step = levels.iter().skip(1).filter(|l| l.settled_objective.is_some()).count();
-    if after_a_step == 0 {
-        let longest_s = levels.iter().skip(1).map(|l| l.to_s - l.from_s).fold(0.0, f64::max);
-        return Err(FitError::TooShort { lag_s, dead_time_s, needed_s: settle_s, longest_s });
-    }
     let noise_std = if settled_residuals.len() >= 2 {
         let n = settled_residuals.len() as f64;
         let mean = settled_residuals.iter().sum::<f64>() / n;
@@ -390,16 +383,8 @@ pub fn fit(record: &Record) -> Result<Fit, FitError> {
     } else {
         fit_rmse
     };
-    let settled: Vec<(f64, f64)> =
-        levels.iter().filter_map(|l| l.settled_objective.map(|j| (l.setpoint, j))).collect();
-    let gain_per_level: Vec<f64> = settled
-        .windows(2)
-        .filter(|w| w[1].0 != w[0].0)
-        .map(|w| (w[1].1 - w[0].1) / (w[1].0 - w[0].0))
-        .collect();
-    let settled_map = quadratic_through(&settled, u0);
-
-    // How far the objective moves between consecutive levels, on the fitted map.
+    // How far the objective moves between consecutive levels, on the fitted map. A
+    // response lost in the noise is the likeliest reason for a fit that wanders.
     let response = levels
         .windows(2)
         .map(|w| (map.value(w[1].setpoint) - map.value(w[0].setpoint)).abs())
@@ -413,6 +398,23 @@ pub fn fit(record: &Record) -> Result<Fit, FitError> {
             needed_step: step_to_clear(&map, VISIBLE_NOISE_MULTIPLE * noise_std, step),
         });
     }
+    if !converged {
+        return Err(FitError::NotConverged { reason: format!("{:?}", report.termination) });
+    }
+    let after_a_step = levels.iter().skip(1).filter(|l| l.settled_objective.is_some()).count();
+    if after_a_step == 0 {
+        let longest_s = levels.iter().skip(1).map(|l| l.to_s - l.from_s).fold(0.0, f64::max);
+        return Err(FitError::TooShort { lag_s, dead_time_s, needed_s: settle_s, longest_s });
+    }
+    let settled: Vec<(f64, f64)> =
+        levels.iter().filter_map(|l| l.settled_objective.map(|j| (l.setpoint, j))).collect();
+    let gain_per_level: Vec<f64> = settled
+        .windows(2)
+        .filter(|w| w[1].0 != w[0].0)
+        .map(|w| (w[1].1 - w[0].1) / (w[1].0 - w[0].0))
+        .collect();
+    let settled_map = quadratic_through(&settled, u0);
+
     Ok(Fit {
         lag_s,
         dead_time_s,

@@ -1,0 +1,269 @@
+//! CHECKS.md "Plant fit from a bump test" and "Speed with plant dynamics": the fit against
+//! SciPy and NumPy on records NumPy generates, and `ridgeline tune` end to end.
+
+use ridgeline::tune::fit::{fit, quadratic_through};
+use ridgeline::tune::recommend::plant_response;
+use ridgeline::tune::{Record, read_csv};
+use ridgeline_tests::{python_json, ridgeline, write_file};
+
+fn num(v: &serde_json::Value) -> f64 {
+    v.as_f64().unwrap_or_else(|| panic!("a number from the reference, not {v}"))
+}
+
+/// A record as CSV text with `t_s`, `objective` and `u.applied`.
+fn record_of(reference: &serde_json::Value) -> (String, Record) {
+    let csv = reference["csv"].as_str().expect("the reference's CSV").to_owned();
+    let record = read_csv(&csv, "u").expect("the reference CSV reads");
+    (csv, record)
+}
+
+/// One step of 1 (at t = 0, with 5 s at rest before it) through `K e^{-Ls}/(Ts + 1)`,
+/// K=2, T=10, L=3, sampled every 0.5 s to 100 s, NumPy noise of `noise` with seed 0; and
+/// SciPy's `curve_fit` of `c0 + K (1 - e^{-(t-L)/T})` for `t >= L` to it (the same
+/// structure as Ridgeline's fit with two levels: an offset and a gain on the lagged input).
+fn step_reference(noise: f64) -> serde_json::Value {
+    python_json(&format!(
+        r#"
+import json
+import numpy as np
+from scipy.optimize import curve_fit
+t = np.arange(-5.0, 100.0 + 1e-9, 0.5)
+u = (t >= 0).astype(float)
+def model(t, c0, K, T, L):
+    return c0 + K * np.where(t >= L, 1 - np.exp(-np.clip(t - L, 0, None) / T), 0.0)
+rng = np.random.default_rng(0)
+y = model(t, 0.0, 2.0, 10.0, 3.0) + {noise:?} * rng.standard_normal(t.size)
+p, cov = curve_fit(model, t, y, p0=[0.0, 1.5, 7.0, 2.0])
+csv = "t_s,objective,u.applied\n" + "".join(f"{{float(a)!r}},{{float(b)!r}},{{float(c)!r}}\n" for a, b, c in zip(t, y, u))
+print(json.dumps(dict(csv=csv, p=[float(v) for v in p], std=[float(v) for v in np.sqrt(np.diag(cov))])))
+"#
+    ))
+}
+
+#[test]
+fn the_lag_and_dead_time_of_a_noisy_step_agree_with_scipy_curve_fit_within_three_of_its_deviations() {
+    let reference = step_reference(0.02);
+    let (_, record) = record_of(&reference);
+    let f = fit(&record).expect("a fit");
+    let (p, std) = (&reference["p"], &reference["std"]);
+    // Source: reference library SciPy (scipy.optimize.curve_fit) on the same NumPy record;
+    // CHECKS.md gives curve_fit's result as about (1.999, 9.85, 3.10).
+    assert!((f.lag_s - num(&p[2])).abs() < 3.0 * num(&std[2]), "lag {} vs {p} +- {std}", f.lag_s);
+    assert!(
+        (f.dead_time_s - num(&p[3])).abs() < 3.0 * num(&std[3]),
+        "dead time {} vs {p} +- {std}",
+        f.dead_time_s
+    );
+    assert!(
+        (f.map.slope() - num(&p[1])).abs() < 3.0 * num(&std[1]),
+        "gain {} vs {p} +- {std}",
+        f.map.slope()
+    );
+    assert!((f.noise_std / 0.02 - 1.0).abs() < 0.2, "noise {}", f.noise_std);
+}
+
+#[test]
+fn on_a_noise_free_step_both_recover_the_truth_to_1e_6() {
+    let reference = step_reference(0.0);
+    let (_, record) = record_of(&reference);
+    let f = fit(&record).expect("a fit");
+    for (name, ours, scipy, truth) in [
+        ("lag", f.lag_s, num(&reference["p"][2]), 10.0),
+        ("dead time", f.dead_time_s, num(&reference["p"][3]), 3.0),
+        ("gain", f.map.slope(), num(&reference["p"][1]), 2.0),
+    ] {
+        // Source: the generating model (K=2, T=10, L=3) and SciPy's curve_fit on it.
+        assert!((ours / truth - 1.0).abs() < 1e-6, "{name}: ours {ours}, truth {truth}");
+        assert!((scipy / truth - 1.0).abs() < 1e-6, "{name}: SciPy {scipy}, truth {truth}");
+    }
+}
+
+/// CHECKS.md's Wiener case: a staircase 2.5, 2.9, 2.1, 2.5 (each change at a sample)
+/// through lag 40 s and dead time 12 s, sampled every 1 s, then `J = 7 - 2 (x - 2.3)^2`
+/// (curvature 4), NumPy noise 0.03 seed 1. The lagged input is the superposition of the
+/// step responses of the changes, written independently of Ridgeline's integration.
+/// SciPy's `least_squares` fits the same structure, lag and dead time included.
+const WIENER: &str = r#"
+import json
+import numpy as np
+from scipy.optimize import least_squares
+t = np.arange(0.0, 1600.0, 1.0)
+u = np.select([t < 200, t < 600, t < 1000], [2.5, 2.9, 2.1], 2.5)
+changes = [(t[k], u[k] - u[k - 1]) for k in range(1, t.size) if u[k] != u[k - 1]]
+def lagged(T, L):
+    x = np.full(t.size, u[0])
+    for at, du in changes:
+        s = np.clip(t - at - L, 0, None)
+        x += du * np.where(t - at >= L, 1 - np.exp(-s / T), 0.0)
+    return x
+def residuals(p):
+    T, L, c0, c1, c2 = p
+    d = lagged(T, L) - 2.5
+    return y - (c0 + c1 * d + c2 * d * d)
+rng = np.random.default_rng(1)
+y = 7.0 - 2.0 * (lagged(40.0, 12.0) - 2.3) ** 2 + 0.03 * rng.standard_normal(t.size)
+r = least_squares(residuals, [30.0, 8.0, 6.9, -0.8, -1.5], x_scale=[10.0, 1.0, 1.0, 1.0, 1.0])
+dof = t.size - 5
+cov = np.linalg.inv(r.jac.T @ r.jac) * (r.fun @ r.fun) / dof
+std = np.sqrt(np.diag(cov))
+csv = "t_s,objective,u.applied\n" + "".join(f"{float(a)!r},{float(b)!r},{float(c)!r}\n" for a, b, c in zip(t, y, u))
+print(json.dumps(dict(csv=csv, p=[float(v) for v in r.x], std=[float(v) for v in std])))
+"#;
+
+#[test]
+fn lag_dead_time_and_curvature_through_a_curved_map_agree_with_scipy_least_squares() {
+    let reference = python_json(WIENER);
+    let (_, record) = record_of(&reference);
+    let f = fit(&record).expect("a fit");
+    let (p, std) = (&reference["p"], &reference["std"]);
+    let curvature = f.map.second_derivative().abs();
+    // Source: reference library SciPy (scipy.optimize.least_squares) fitting the same
+    // structure; CHECKS.md gives about (40.1, 11.8, 4.02).
+    assert!((f.lag_s - num(&p[0])).abs() < 3.0 * num(&std[0]), "lag {} vs {p} +- {std}", f.lag_s);
+    assert!(
+        (f.dead_time_s - num(&p[1])).abs() < 3.0 * num(&std[1]),
+        "dead {} vs {p} +- {std}",
+        f.dead_time_s
+    );
+    let (c2, c2_std) = (num(&p[4]).abs() * 2.0, num(&std[4]) * 2.0);
+    assert!((curvature - c2).abs() < 3.0 * c2_std, "curvature {curvature} vs {c2} +- {c2_std}");
+}
+
+#[test]
+fn the_map_through_the_settled_levels_equals_numpy_polyfit_to_1e_9() {
+    let reference = python_json(WIENER);
+    let (_, record) = record_of(&reference);
+    let f = fit(&record).expect("a fit");
+    let points: Vec<(f64, f64)> =
+        f.levels.iter().map(|l| (l.setpoint, l.settled_objective.expect("every level settles"))).collect();
+    let ours = quadratic_through(&points, 2.5).expect("three distinct levels");
+    let (u, j): (Vec<f64>, Vec<f64>) = points.iter().copied().unzip();
+    let poly = python_json(&format!(
+        "import json, numpy as np\np = np.polyfit({u:?}, {j:?}, 2)\n\
+         print(json.dumps(dict(curvature=float(2 * p[0]), vertex=float(-p[1] / (2 * p[0])))))"
+    ));
+    // Source: reference library NumPy (numpy.polyfit) on the same settled levels.
+    let (c, v) = (num(&poly["curvature"]), num(&poly["vertex"]));
+    assert!((ours.second_derivative() / c - 1.0).abs() < 1e-9, "{} vs {c}", ours.second_derivative());
+    assert!((ours.vertex().unwrap() / v - 1.0).abs() < 1e-9, "{:?} vs {v}", ours.vertex());
+}
+
+#[test]
+fn the_plants_gain_and_lag_at_the_dither_frequency_equal_scipy_freqresp() {
+    let reference = python_json(
+        "import json, numpy as np\nfrom scipy.signal import lti, freqresp\n\
+         w, h = freqresp(lti([2.0], [10.0, 1.0]), w=[0.1])\n\
+         print(json.dumps(dict(gain=float(abs(h[0])) / 2.0, phase=float(np.angle(h[0])))))",
+    );
+    let (gain, lag) = plant_response(10.0, 3.0, 0.1);
+    // Source: reference library SciPy (scipy.signal.freqresp of K/(Ts+1)), plus w L for the
+    // dead time; CHECKS.md: |G| = 1.414214 for K = 2, phase -1.085398 rad.
+    let phase = num(&reference["phase"]) - 0.1 * 3.0;
+    assert!((gain - num(&reference["gain"])).abs() < 1e-9, "{gain} vs {}", reference["gain"]);
+    assert!((-lag - phase).abs() < 1e-9, "{lag} vs {phase}");
+    assert!((-lag - -1.085398).abs() < 1e-6);
+}
+
+fn tune_json(args: &[&str]) -> serde_json::Value {
+    let mut all = vec!["tune"];
+    all.extend_from_slice(args);
+    let run = ridgeline(&all);
+    assert_eq!(run.code, Some(0), "{}", run.stderr);
+    serde_json::from_str(&run.stdout).unwrap_or_else(|e| panic!("not JSON ({e}):\n{}", run.stdout))
+}
+
+#[test]
+fn the_recommended_loop_rehearsed_against_the_fitted_plant_converges_within_10_percent_of_the_requested_time()
+{
+    let dir = tempfile::tempdir().unwrap();
+    let reference = python_json(WIENER);
+    let samples = write_file(dir.path(), "bump.csv", reference["csv"].as_str().unwrap());
+    let plant = dir.path().join("fitted.toml");
+    let result = tune_json(&[
+        "--samples",
+        samples.to_str().unwrap(),
+        "--input",
+        "u",
+        "--time-constant",
+        "30m",
+        "--plant-out",
+        plant.to_str().unwrap(),
+        "--json",
+    ]);
+    // Source: the averaged formula 1/tau = gain |d2J/du2| |G| |H| cos(phi) (CHECKS.md,
+    // after Tan, Nesic & Mareels 2006), measured on a rehearsal of the plant with lag and dead time.
+    let rehearsed = num(&result["rehearsed"]["time_constant_s"]);
+    assert!(
+        (rehearsed / 1800.0 - 1.0).abs() < 0.1,
+        "rehearsed {rehearsed} s for 1800 s requested: {result:#}"
+    );
+    assert!((num(&result["predicted"]["time_constant_s"]) / 1800.0 - 1.0).abs() < 0.01);
+    let r = &result["recommended"];
+    assert!(num(&r["dither_period_s"]) >= 3.0 * (40.0 + 12.0) * 0.97, "{r}");
+    assert!((num(&r["highpass_hz"]) * num(&r["dither_period_s"]) - 0.2).abs() < 1e-3, "{r}");
+    assert_eq!(r["direction"], "maximize");
+    for key in ["lag_s", "dead_time_s", "curvature", "slope", "vertex", "noise_std", "fit_rmse"] {
+        assert!(result["model"][key].is_number(), "model.{key} in {result:#}");
+    }
+    assert!(result["model"]["gain_per_level"].as_array().is_some_and(|g| g.len() == 3));
+    assert!(
+        std::fs::read_to_string(&plant).unwrap().contains("fitted_process"),
+        "the fitted plant is written"
+    );
+}
+
+#[test]
+fn the_text_output_has_reasons_a_proof_and_a_snippet_to_paste() {
+    let dir = tempfile::tempdir().unwrap();
+    let samples = write_file(dir.path(), "bump.csv", python_json(WIENER)["csv"].as_str().unwrap());
+    let run = ridgeline(&["tune", "--samples", samples.to_str().unwrap(), "--input", "u"]);
+    assert_eq!(run.code, Some(0), "{}", run.stderr);
+    for needle in [
+        "dead time 1",
+        "common practice",
+        "predicted   rehearsed",
+        "[loops.filter]",
+        "phase_deg = ",
+        "gain = ",
+    ] {
+        assert!(run.stdout.contains(needle), "missing `{needle}` in:\n{}", run.stdout);
+    }
+}
+
+#[test]
+fn data_that_cannot_be_fitted_is_refused_with_a_sentence_saying_what_is_missing() {
+    let dir = tempfile::tempdir().unwrap();
+    let cases = [
+        ("t_s,objective\n0,1\n", "no column `u.applied`"),
+        ("t_s,objective,u.applied\n0,1,2\n1,1,2\n", "a fit needs at least"),
+        (
+            &(0..100)
+                .map(|k| format!("{k},{},2\n", 1.0 + 0.01 * (k % 3) as f64))
+                .fold("t_s,objective,u.applied\n".to_owned(), |a, b| a + &b),
+            "holds no step",
+        ),
+        (
+            &(0..300)
+                .map(|k| {
+                    let u = if k < 100 {
+                        2.0
+                    } else if k < 200 {
+                        2.01
+                    } else {
+                        1.99
+                    };
+                    // A tiny step under noise of about 0.3 (a fixed pseudo-random pattern).
+                    format!("{k},{},{u}\n", 5.0 + 0.3 * (((k * 7919) % 101) as f64 / 50.0 - 1.0))
+                })
+                .fold("t_s,objective,u.applied\n".to_owned(), |a, b| a + &b),
+            "lost in the noise",
+        ),
+    ];
+    for (text, needle) in cases {
+        let samples = write_file(dir.path(), "bad.csv", text);
+        let run = ridgeline(&["tune", "--samples", samples.to_str().unwrap(), "--input", "u"]);
+        assert_eq!(run.code, Some(2), "{needle}: {}{}", run.stdout, run.stderr);
+        assert!(run.stderr.contains(needle), "missing `{needle}` in:\n{}", run.stderr);
+        assert!(run.stdout.is_empty(), "no tuning printed: {}", run.stdout);
+    }
+}
