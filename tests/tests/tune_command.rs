@@ -267,3 +267,146 @@ fn data_that_cannot_be_fitted_is_refused_with_a_sentence_saying_what_is_missing(
         assert!(run.stdout.is_empty(), "no tuning printed: {}", run.stdout);
     }
 }
+
+/// A plant with lag 40 s and dead time 12 s before `J = 10 - 2 (x - 3)^2` (curvature 4).
+const LAGGED_PLANT: &str = r#"
+step_s = 0.1
+[[inputs]]
+name = "u"
+initial = 1.5
+holding_register = 0
+[[outputs]]
+name = "x"
+input_register = 0
+expression = "u"
+lag_s = 40
+dead_time_s = 12
+[[outputs]]
+name = "y"
+input_register = 2
+expression = "10 - 2 * (x - 3)^2"
+"#;
+
+/// The loop for [`LAGGED_PLANT`], with the plant known to `check` and this `phase_deg`.
+fn lagged_loop(phase_deg: f64) -> String {
+    format!(
+        r#"
+[links.plc]
+modbus_tcp = "127.0.0.1:5020"
+[tags.y]
+link = "plc"
+input_register = 2
+type = "f32"
+[[loops]]
+name = "lagged"
+objective = "y"
+direction = "maximize"
+tick_s = 1.0
+[loops.model]
+lag_s = 40
+dead_time_s = 12
+curvature = 4
+[loops.filter]
+highpass_hz = 0.000833
+phase_deg = {phase_deg:?}
+[loops.watchdog]
+stale_after_s = 10
+[[loops.inputs]]
+name = "u"
+write = {{ link = "plc", holding_register = 0, type = "f32" }}
+limits = [0.0, 6.0]
+bounds = [0.0, 6.0]
+safe = 1.5
+max_rate_per_s = 1.0
+dither_amplitude = 0.1
+dither_period_s = 240
+gain = 0.00015
+"#
+    )
+}
+
+/// `check`'s predicted time constant and `rehearse`'s measured one, for the estimate's
+/// error in window means of half a dither period (the demodulation's ripple is at twice
+/// the dither frequency).
+fn predicted_and_rehearsed(phase_deg: f64) -> (f64, f64) {
+    let dir = tempfile::tempdir().unwrap();
+    let config = write_file(dir.path(), "loop.toml", &lagged_loop(phase_deg));
+    let plant = write_file(dir.path(), "plant.toml", LAGGED_PLANT);
+    let check = ridgeline(&["check", "--config", config.to_str().unwrap()]);
+    assert_eq!(check.code, Some(0), "{}", check.stderr);
+    let predicted: f64 = check
+        .stdout
+        .split("predicted time constant ")
+        .nth(1)
+        .and_then(|rest| rest.split(" s").next())
+        .and_then(|n| n.parse().ok())
+        .unwrap_or_else(|| panic!("no prediction in:\n{}", check.stdout));
+    assert!(check.stdout.contains("with the plant's lag and dead time"), "{}", check.stdout);
+    let csv = dir.path().join("csv");
+    let duration = format!("{}s", (6.0 * predicted).round());
+    let run = ridgeline(&[
+        "rehearse",
+        "--config",
+        config.to_str().unwrap(),
+        "--plant",
+        plant.to_str().unwrap(),
+        "--duration",
+        &duration,
+        "--csv",
+        csv.to_str().unwrap(),
+    ]);
+    assert_eq!(run.code, Some(0), "{}", run.stderr);
+    let text = std::fs::read_to_string(csv.join("lagged.csv")).unwrap();
+    let mut lines = text.lines();
+    let header: Vec<&str> = lines.next().unwrap().split(',').collect();
+    let column = header.iter().position(|h| *h == "u.estimate").expect("an estimate column");
+    let error: Vec<f64> =
+        lines.map(|l| l.split(',').nth(column).unwrap().parse::<f64>().unwrap() - 3.0).collect();
+    (predicted, crate::drive::decay_time_constant(&error, 120, 0.6, 0.05))
+}
+
+#[test]
+fn checks_prediction_with_plant_dynamics_matches_the_rehearsal_with_and_without_phase_compensation() {
+    // Source: the averaged rate 1/tau = gain |d2J/du2| |G| |H| cos(phi) (CHECKS.md "Speed with
+    // plant dynamics", after Tan, Nesic & Mareels 2006), against a rehearsal of the plant.
+    // phase_deg 53 is about the plant's lag less the high-pass's lead at this period.
+    let (compensated, measured) = predicted_and_rehearsed(53.0);
+    assert!(
+        (measured / compensated - 1.0).abs() < 0.1,
+        "compensated: predicted {compensated} s, rehearsed {measured} s"
+    );
+    let (uncompensated, measured) = predicted_and_rehearsed(0.0);
+    assert!(
+        (measured / uncompensated - 1.0).abs() < 0.1,
+        "uncompensated: predicted {uncompensated} s, rehearsed {measured} s"
+    );
+    assert!(
+        uncompensated > 1.4 * compensated,
+        "the phase error slows the loop: {uncompensated} vs {compensated}"
+    );
+}
+
+#[test]
+fn check_warns_when_the_phase_or_the_period_does_not_fit_the_plant() {
+    let dir = tempfile::tempdir().unwrap();
+    let text = lagged_loop(0.0).replace("dither_period_s = 240", "dither_period_s = 100");
+    let config = write_file(dir.path(), "loop.toml", &text);
+    let check = ridgeline(&["check", "--config", config.to_str().unwrap()]);
+    assert_eq!(check.code, Some(0), "{}", check.stderr);
+    assert!(
+        check.stdout.contains("degrees from the plant's lag at the dither frequency"),
+        "{}",
+        check.stdout
+    );
+    assert!(check.stdout.contains("shorter than 3 x (lag + dead time) = 156 s"), "{}", check.stdout);
+
+    let both = lagged_loop(53.0).replace("tick_s = 1.0", "tick_s = 1.0\ncurvature_hint = 4");
+    let config = write_file(dir.path(), "both.toml", &both);
+    let check = ridgeline(&["check", "--config", config.to_str().unwrap()]);
+    assert_eq!(check.code, Some(2));
+    assert!(
+        check.stderr.contains("loops[0].curvature_hint: is the old name of [loops.model] `curvature`"),
+        "{}",
+        check.stderr
+    );
+}

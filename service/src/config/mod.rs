@@ -193,11 +193,30 @@ pub struct LoopConfig {
     pub start_mode: Mode,
     pub permit: Option<String>,
     pub on_shutdown: OnShutdown,
-    pub curvature_hint: Option<f64>,
+    /// What is known of the plant (`[loops.model]`); `curvature` also from the old
+    /// loop key `curvature_hint`.
+    pub model: Option<PlantModel>,
     pub filter: Filter,
     pub watchdog: Watchdog,
     pub heartbeat: Option<Heartbeat>,
     pub inputs: Vec<InputConfig>,
+}
+
+/// What is known of a loop's plant: a first-order lag with dead time (zero when not
+/// known), the curvature `|d2J/du2|` near the optimum and the objective's noise.
+#[derive(Debug, Clone, Copy, Default, PartialEq)]
+pub struct PlantModel {
+    pub lag_s: f64,
+    pub dead_time_s: f64,
+    pub curvature: Option<f64>,
+    pub noise_std: Option<f64>,
+}
+
+impl LoopConfig {
+    /// `|d2J/du2|` when the config gives it.
+    pub fn curvature(&self) -> Option<f64> {
+        self.model.and_then(|m| m.curvature)
+    }
 }
 
 #[derive(Debug, Clone, Copy)]
@@ -472,6 +491,7 @@ const LOOP_KEYS: &[&str] = &[
     "permit",
     "on_shutdown",
     "curvature_hint",
+    "model",
     "filter",
     "watchdog",
     "heartbeat",
@@ -511,6 +531,30 @@ fn read_loop(t: &Table) -> Option<LoopConfig> {
     if !t.has("watchdog") {
         t.problem("missing table [loops.watchdog] (at least `stale_after_s`)");
     }
+    let model = t.table("model", &["lag_s", "dead_time_s", "curvature", "noise_std"]).map(|m| {
+        Some(PlantModel {
+            lag_s: m.or("lag_s", 0.0)?,
+            dead_time_s: m.or("dead_time_s", 0.0)?,
+            curvature: m.opt("curvature"),
+            noise_std: m.opt("noise_std"),
+        })
+    });
+    let hint = t.opt::<f64>("curvature_hint").filter(|&c| {
+        let valid = c > 0.0 && c.is_finite();
+        if !valid {
+            t.problem_at("curvature_hint", "must be greater than zero (it is |d2J/du2|)");
+        }
+        valid
+    });
+    let model = match (model.flatten(), hint) {
+        (Some(m), Some(_)) if m.curvature.is_some() => {
+            t.problem_at("curvature_hint", "is the old name of [loops.model] `curvature`: give it once");
+            None
+        }
+        (Some(m), hint) => Some(PlantModel { curvature: m.curvature.or(hint), ..m }),
+        (None, Some(c)) => Some(PlantModel { curvature: Some(c), ..PlantModel::default() }),
+        (None, None) => None,
+    };
     let heartbeat = t
         .table("heartbeat", &["link", "holding_register"])
         .map(|h| Some(Heartbeat { link: h.req("link")?, holding_register: h.req("holding_register")? }));
@@ -530,7 +574,7 @@ fn read_loop(t: &Table) -> Option<LoopConfig> {
         start_mode: t.or("start_mode", Mode::Observing)?,
         permit: t.opt("permit"),
         on_shutdown: t.or("on_shutdown", OnShutdown::Hold)?,
-        curvature_hint: t.opt("curvature_hint"),
+        model,
         filter: filter??,
         watchdog: watchdog??,
         heartbeat: heartbeat.flatten(),

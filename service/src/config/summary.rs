@@ -4,7 +4,10 @@
 use std::fmt;
 
 use super::{Config, LoopConfig};
+use std::f64::consts::TAU;
+
 use crate::seek::filter::highpass_gain_at;
+use crate::tune::recommend::{PERIOD_PER_RESPONSE, loop_factor, sampled_response};
 
 /// One input of one loop, as `check` reports it.
 #[derive(Debug, Clone, PartialEq)]
@@ -16,7 +19,8 @@ pub struct InputSummary {
     pub highpass_ratio: f64,
     /// Real part of the high-pass response at the dither frequency.
     pub reh: f64,
-    /// Predicted convergence time constant when `curvature_hint` is set (DESIGN.md §4).
+    /// Predicted convergence time constant when the curvature is known (DESIGN.md §4),
+    /// with the plant's gain and phase at the dither frequency when `[loops.model]` has them.
     pub time_constant_s: Option<f64>,
     pub warnings: Vec<String>,
 }
@@ -27,7 +31,9 @@ pub struct LoopSummary {
     pub direction: &'static str,
     pub tick_s: f64,
     pub start_mode: &'static str,
-    pub curvature_hint: Option<f64>,
+    pub curvature: Option<f64>,
+    /// Whether the prediction includes the plant's lag and dead time.
+    pub with_dynamics: bool,
     pub inputs: Vec<InputSummary>,
 }
 
@@ -62,13 +68,44 @@ fn summarize_loop(l: &LoopConfig) -> LoopSummary {
                     "the high-pass cutoff is {ratio:.3} of the dither frequency; common practice keeps it between 0.1 and 0.5"
                 ));
             }
-            let time_constant = l.curvature_hint.map(|c| time_constant_s(l.tick_s, input.gain, c, reh));
+            let factor = match &l.model {
+                Some(m) if m.lag_s > 0.0 || m.dead_time_s > 0.0 => {
+                    let (_, plant_lag) = sampled_response(m.lag_s, m.dead_time_s, TAU * f, l.tick_s);
+                    let plant_lag = plant_lag.to_degrees();
+                    if (l.filter.phase_deg - plant_lag).abs() > 30.0 {
+                        warnings.push(format!(
+                            "phase_deg = {} is {:.0} degrees from the plant's lag at the dither frequency ({plant_lag:.1} \
+                             degrees from [loops.model]): the gradient estimate loses cos of the difference; set phase_deg \
+                             near {plant_lag:.0} (`ridgeline tune` gives the exact value)",
+                            l.filter.phase_deg,
+                            (l.filter.phase_deg - plant_lag).abs()
+                        ));
+                    }
+                    let response = m.lag_s + m.dead_time_s;
+                    if input.dither_period_s < PERIOD_PER_RESPONSE * response {
+                        warnings.push(format!(
+                            "the dither period {} s is shorter than {PERIOD_PER_RESPONSE} x (lag + dead time) = {} s of \
+                             [loops.model]: the plant smooths the dither away (common practice: 3 to 10 times)",
+                            input.dither_period_s,
+                            PERIOD_PER_RESPONSE * response
+                        ));
+                    }
+                    loop_factor((m.lag_s, m.dead_time_s), l.tick_s, input.dither_period_s, l.filter.highpass_hz, l.filter.phase_deg)
+                }
+                _ => reh,
+            };
+            let time_constant = l.curvature().map(|c| time_constant_s(l.tick_s, input.gain, c, factor));
             match time_constant {
                 Some(Some(tau)) if tau < 5.0 * input.dither_period_s => warnings.push(format!(
                     "adaptation is faster than 5 dither periods ({:.1} periods); common practice keeps it slower \
                      so the gradient estimate averages over several periods",
                     tau / input.dither_period_s
                 )),
+                Some(None) if factor <= 0.0 => warnings.push(
+                    "phase_deg leaves the demodulated gradient at zero or reversed (the phase error is 90 degrees or \
+                     more): the loop would not converge"
+                        .to_owned(),
+                ),
                 Some(None) => warnings.push(
                     "the gain is so high that the averaged loop would overshoot in one tick; lower `gain`".to_owned(),
                 ),
@@ -90,7 +127,8 @@ fn summarize_loop(l: &LoopConfig) -> LoopSummary {
         direction: l.direction.as_str(),
         tick_s: l.tick_s,
         start_mode: l.start_mode.as_str(),
-        curvature_hint: l.curvature_hint,
+        curvature: l.curvature(),
+        with_dynamics: l.model.is_some_and(|m| m.lag_s > 0.0 || m.dead_time_s > 0.0),
         inputs,
     }
 }
@@ -108,11 +146,12 @@ impl fmt::Display for LoopSummary {
                 "  input {}: dither {:.6} Hz ({:.1} ticks per period), high-pass cutoff {:.3} x dither frequency, ReH {:.4}",
                 i.name, i.dither_hz, i.ticks_per_period, i.highpass_ratio, i.reh
             )?;
-            if let (Some(tau), Some(hint)) = (i.time_constant_s, self.curvature_hint) {
+            if let (Some(tau), Some(curvature)) = (i.time_constant_s, self.curvature) {
                 writeln!(
                     f,
-                    "    predicted time constant {tau:.1} s ({:.1} dither periods) for |d2J/du2| = {hint}",
-                    tau * i.dither_hz
+                    "    predicted time constant {tau:.1} s ({:.1} dither periods) for |d2J/du2| = {curvature}{}",
+                    tau * i.dither_hz,
+                    if self.with_dynamics { ", with the plant's lag and dead time" } else { "" }
                 )?;
             }
             for w in &i.warnings {

@@ -174,8 +174,17 @@ fn validate_loop(config: &Config, l: &LoopConfig, path: &str, p: &Problems) {
     {
         p.at(&format!("{path}.permit"), format!("there is no tag `{permit}` in [tags]"));
     }
-    if l.curvature_hint.is_some_and(|c| c <= 0.0) {
-        p.at(&format!("{path}.curvature_hint"), "must be greater than zero (it is |d2J/du2|)");
+    if let Some(m) = &l.model {
+        if m.curvature.is_some_and(|c| !(c > 0.0 && c.is_finite())) {
+            p.at(&format!("{path}.model.curvature"), "must be greater than zero (it is |d2J/du2|)");
+        }
+        for (key, value) in
+            [("lag_s", m.lag_s), ("dead_time_s", m.dead_time_s), ("noise_std", m.noise_std.unwrap_or(0.0))]
+        {
+            if !(value >= 0.0 && value.is_finite()) {
+                p.at(&format!("{path}.model.{key}"), "must be zero or more");
+            }
+        }
     }
     validate_filter(l, path, tick_ok, p);
     validate_watchdog(l, path, p);

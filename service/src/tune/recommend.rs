@@ -58,14 +58,14 @@ pub fn sampled_response(lag_s: f64, dead_time_s: f64, w: f64, tick_s: f64) -> (f
 /// `|G| |H| cos(phi)` with `phi = arg G + arg H + phase_deg`, the phase left
 /// uncompensated. `1/tau = gain * |d2J/du2| * factor` (CHECKS.md, Tan et al.).
 pub fn loop_factor(
-    model: &PlantModel,
+    (lag_s, dead_time_s): (f64, f64),
     tick_s: f64,
     dither_period_s: f64,
     highpass_hz: f64,
     phase_deg: f64,
 ) -> f64 {
     let w = TAU / dither_period_s;
-    let (g, lag) = sampled_response(model.lag_s, model.dead_time_s, w, tick_s);
+    let (g, lag) = sampled_response(lag_s, dead_time_s, w, tick_s);
     let (h, lead) = highpass(dither_period_s, highpass_hz, tick_s);
     g * h * (lead - lag + phase_deg.to_radians()).cos()
 }
@@ -208,7 +208,7 @@ pub fn recommend(model: &PlantModel, goal: &Goal) -> Recommendation {
             show(MIN_PERIODS_PER_TIME_CONSTANT * period)
         ));
     }
-    let factor = loop_factor(model, h, period, highpass_hz, phase_deg);
+    let factor = loop_factor((model.lag_s, model.dead_time_s), h, period, highpass_hz, phase_deg);
     let per_tick = (1.0 - (-h / tau).exp()) / h;
     let gain = round4(per_tick / (model.curvature * factor));
     let time_constant = time_constant_s(h, gain, model.curvature, factor).unwrap_or(tau);
@@ -302,7 +302,8 @@ mod tests {
         assert!(r.mean_loss <= 0.03 * 1.001, "{}", r.mean_loss);
         assert!(r.dither_amplitude.value <= 3.0 / 4.0);
         // With the phase compensated, the loop factor is |G| |H| to within the rounding.
-        let f = loop_factor(&MODEL, 1.0, 156.0, r.highpass_hz.value, r.phase_deg.value);
+        let f =
+            loop_factor((MODEL.lag_s, MODEL.dead_time_s), 1.0, 156.0, r.highpass_hz.value, r.phase_deg.value);
         assert!(f > 0.99 * r.plant_gain * 0.98, "{f}");
         assert!(r.warnings.is_empty(), "{:?}", r.warnings);
     }
