@@ -4,6 +4,7 @@
 
 mod api;
 mod bad_input;
+mod bump_test;
 mod check_command;
 mod classic_loop;
 mod drive;

@@ -12,7 +12,7 @@ use serde_json::{Value, json};
 
 use super::{ApiError, ApiState, JsonBody, Operator, PathParams, QueryParams, Reader, openapi};
 use crate::config::{Mode, Range};
-use crate::history::{EventRow, SampleRow, parse_rfc3339, rfc3339};
+use crate::history::{BumpTestRow, EventRow, SampleRow, parse_rfc3339, rfc3339};
 use crate::supervisor::CommandError;
 use crate::supervisor::status::LoopStatus;
 
@@ -113,9 +113,65 @@ pub async fn set_bounds(
     handle.set_bounds(index, bounds, &caller.name).await.map(Json).map_err(conflict)
 }
 
+/// A level held at most this long when the request does not say.
+pub const SETTLE_MAX_DEFAULT_S: f64 = 900.0;
+/// The longest a level may be held: a day.
+pub const SETTLE_MAX_MAX_S: f64 = 86_400.0;
+
+#[derive(Debug, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct BumpTestRequest {
+    step: f64,
+    settle_max_s: Option<f64>,
+}
+
+pub async fn bump_test(
+    State(state): State<ApiState>,
+    Operator(caller): Operator,
+    PathParams((name, input)): PathParams<(String, String)>,
+    JsonBody(request): JsonBody<BumpTestRequest>,
+) -> Result<(axum::http::StatusCode, Json<BumpTestRow>), ApiError> {
+    let handle = state.find(&name)?;
+    let index = handle
+        .config
+        .inputs
+        .iter()
+        .position(|i| i.name == input)
+        .ok_or_else(|| ApiError::NotFound(format!("loop `{name}` has no input `{input}`")))?;
+    if !(request.step.is_finite() && request.step > 0.0) {
+        return Err(ApiError::Unprocessable(format!(
+            "step: {} is not a number greater than zero",
+            request.step
+        )));
+    }
+    let settle_max_s = request.settle_max_s.unwrap_or(SETTLE_MAX_DEFAULT_S);
+    if !(settle_max_s.is_finite() && settle_max_s > 0.0 && settle_max_s <= SETTLE_MAX_MAX_S) {
+        return Err(ApiError::Unprocessable(format!(
+            "settle_max_s: {settle_max_s} is not between 0 and {SETTLE_MAX_MAX_S} s"
+        )));
+    }
+    let row = handle.bump_test(index, request.step, settle_max_s, &caller.name).await.map_err(conflict)?;
+    Ok((axum::http::StatusCode::ACCEPTED, Json(row)))
+}
+
+pub async fn bump_test_status(
+    State(state): State<ApiState>,
+    _: Reader,
+    PathParams(id): PathParams<i64>,
+) -> Result<Json<BumpTestRow>, ApiError> {
+    let history = state.history.as_ref().ok_or_else(|| ApiError::Unavailable("no history is kept".into()))?;
+    history
+        .bump_test(id)
+        .await
+        .map_err(|e| ApiError::Internal(e.to_string()))?
+        .map(Json)
+        .ok_or_else(|| ApiError::NotFound(format!("there is no bump test {id}")))
+}
+
 fn conflict(e: CommandError) -> ApiError {
     match e {
         CommandError::Conflict(m) => ApiError::Conflict(m),
+        CommandError::Unprocessable(m) => ApiError::Unprocessable(m),
     }
 }
 

@@ -14,7 +14,7 @@ use axum::http::StatusCode;
 use axum::http::request::Parts;
 use axum::middleware::{self, Next};
 use axum::response::{IntoResponse, Response};
-use axum::routing::{get, put};
+use axum::routing::{get, post, put};
 use axum::{Json, Router};
 use serde::de::DeserializeOwned;
 
@@ -180,6 +180,8 @@ pub const ROUTES: &[(&str, &str)] = &[
     ("GET", "/api/v1/loops/{loop}"),
     ("PUT", "/api/v1/loops/{loop}/mode"),
     ("PUT", "/api/v1/loops/{loop}/inputs/{input}/bounds"),
+    ("POST", "/api/v1/loops/{loop}/inputs/{input}/bump-test"),
+    ("GET", "/api/v1/bump-tests/{id}"),
     ("GET", "/api/v1/loops/{loop}/samples"),
     ("GET", "/api/v1/events"),
     ("GET", "/"),
@@ -200,6 +202,8 @@ pub fn router(state: ApiState) -> Router {
         .route("/api/v1/loops/{loop}", get(handlers::one_loop))
         .route("/api/v1/loops/{loop}/mode", put(handlers::set_mode))
         .route("/api/v1/loops/{loop}/inputs/{input}/bounds", put(handlers::set_bounds))
+        .route("/api/v1/loops/{loop}/inputs/{input}/bump-test", post(handlers::bump_test))
+        .route("/api/v1/bump-tests/{id}", get(handlers::bump_test_status))
         .route("/api/v1/loops/{loop}/samples", get(handlers::samples))
         .route("/api/v1/events", get(handlers::events))
         .route("/", get(page::status_page))

@@ -3,7 +3,10 @@
 
 use serde_json::{Value, json};
 
-use super::handlers::{EVENTS_DEFAULT, EVENTS_MAX, SAMPLES_DEFAULT, SAMPLES_MAX_CSV, SAMPLES_MAX_JSON};
+use super::handlers::{
+    EVENTS_DEFAULT, EVENTS_MAX, SAMPLES_DEFAULT, SAMPLES_MAX_CSV, SAMPLES_MAX_JSON, SETTLE_MAX_DEFAULT_S,
+    SETTLE_MAX_MAX_S,
+};
 
 fn error_response(description: &str) -> Value {
     json!({"description": description, "content": {"application/json": {"schema": {"$ref": "#/components/schemas/Error"}}}})
@@ -75,7 +78,7 @@ pub fn document() -> Value {
                     "properties": {
                         "name": {"type": "string"},
                         "mode": {"enum": ["seeking", "holding", "observing", "stopped"]},
-                        "state": {"enum": ["seeking", "holding", "observing", "stopped", "fallback", "no_permit"]},
+                        "state": {"enum": ["seeking", "holding", "observing", "stopped", "fallback", "no_permit", "testing"]},
                         "fallback_reason": {"type": ["string", "null"]},
                         "direction": {"enum": ["maximize", "minimize"]},
                         "method": {"enum": ["sine", "newton", "stepwise"]},
@@ -94,6 +97,39 @@ pub fn document() -> Value {
                 "BoundsChange": {
                     "type": "object", "required": ["min", "max"], "additionalProperties": false,
                     "properties": {"min": {"type": "number"}, "max": {"type": "number"}}
+                },
+                "BumpTestRequest": {
+                    "type": "object", "required": ["step"], "additionalProperties": false,
+                    "properties": {
+                        "step": {"type": "number", "exclusiveMinimum": 0, "description": "The staircase goes u0, u0 + step, u0 - step, u0; every level inside the input's bounds."},
+                        "settle_max_s": {"type": "number", "exclusiveMinimum": 0, "maximum": SETTLE_MAX_MAX_S, "default": SETTLE_MAX_DEFAULT_S, "description": "Longest a level is held when the objective does not settle."}
+                    }
+                },
+                "BumpTest": {
+                    "type": "object",
+                    "required": ["id", "loop", "input", "status", "step", "settle_max_s", "setpoints", "started_at", "finished_at", "abort_reason", "levels", "result", "fit_error", "actor"],
+                    "properties": {
+                        "id": {"type": "integer"},
+                        "loop": {"type": "string"},
+                        "input": {"type": "string"},
+                        "status": {"enum": ["running", "done", "aborted"]},
+                        "step": {"type": "number"},
+                        "settle_max_s": {"type": "number"},
+                        "setpoints": {"type": "array", "items": {"type": "number"}, "description": "u0, u0 + step, u0 - step, u0."},
+                        "started_at": {"type": "string", "format": "date-time"},
+                        "finished_at": {"type": ["string", "null"], "format": "date-time"},
+                        "abort_reason": {"type": ["string", "null"]},
+                        "levels": {"type": "array", "items": {"type": "object", "required": ["setpoint", "from", "to", "settled_objective", "settled"], "properties": {
+                            "setpoint": {"type": "number"},
+                            "from": {"type": "string", "format": "date-time"},
+                            "to": {"type": "string", "format": "date-time"},
+                            "settled_objective": number_or_null,
+                            "settled": {"type": "boolean", "description": "False when the level ended at settle_max_s."}
+                        }}},
+                        "result": {"type": ["object", "null"], "description": "Once done: the fitted plant, the recommended tuning and its proof, as `ridgeline tune --json` prints them."},
+                        "fit_error": {"type": ["string", "null"], "description": "Once done without a result: why the record gave no tuning."},
+                        "actor": {"type": "string"}
+                    }
                 },
                 "Sample": {
                     "type": "object",
@@ -115,7 +151,7 @@ pub fn document() -> Value {
                         "id": {"type": "integer"},
                         "at": {"type": "string", "format": "date-time"},
                         "loop": {"type": ["string", "null"]},
-                        "kind": {"type": "string", "description": "mode_changed, bounds_changed, tripped, recovered, permit_withdrawn, permit_granted, permit_lost, link_conflict, loop_started, loop_stopped, link_down, link_up, service_started, service_stopped"},
+                        "kind": {"type": "string", "description": "mode_changed, bounds_changed, tripped, recovered, permit_withdrawn, permit_granted, permit_lost, link_conflict, loop_started, loop_stopped, bump_test_started, bump_test_done, bump_test_aborted, link_down, link_up, service_started, service_stopped"},
                         "detail": {"description": "JSON detail of the event."},
                         "actor": {"type": "string", "description": "The token's name, or \"system\"."}
                     }
@@ -149,6 +185,28 @@ pub fn document() -> Value {
                 "responses": write_errors(json!({
                     "200": json_response("The loop's status with the new bounds.", status_ref()),
                     "422": error_response("Bounds outside the limits, empty, not finite, or narrower than twice the dither amplitude.")
+                }))
+            }},
+            "/api/v1/loops/{loop}/inputs/{input}/bump-test": {"post": {
+                "summary": "Start a bump test: the input steps u0, u0 + step, u0 - step, u0 at its rate limit, each level held until the objective settles; the loop is `testing` meanwhile. A mode change cancels it and restores u0; a trip aborts it",
+                "security": [{"bearer": []}],
+                "parameters": [loop_param(), {"name": "input", "in": "path", "required": true, "schema": {"type": "string"}, "description": "Input name."}],
+                "requestBody": {"required": true, "content": {"application/json": {"schema": {"$ref": "#/components/schemas/BumpTestRequest"}}}},
+                "responses": write_errors(json!({
+                    "202": json_response("The test, started.", json!({"$ref": "#/components/schemas/BumpTest"})),
+                    "409": error_response("The loop is in fallback, without permit, stopped, not started, or already testing."),
+                    "422": error_response("A level outside the input's bounds (naming the bound), or a step or settle_max_s out of range.")
+                }))
+            }},
+            "/api/v1/bump-tests/{id}": {"get": {
+                "summary": "A bump test: its levels so far and, once done, the fitted plant and recommended tuning",
+                "security": [{}, {"bearer": []}],
+                "parameters": [{"name": "id", "in": "path", "required": true, "schema": {"type": "integer"}, "description": "The id the start answered with."}],
+                "responses": read_errors(json!({
+                    "200": json_response("The test.", json!({"$ref": "#/components/schemas/BumpTest"})),
+                    "400": error_response("An id that is not an integer."),
+                    "404": error_response("No such test."),
+                    "503": error_response("No history is kept.")
                 }))
             }},
             "/api/v1/loops/{loop}/samples": {"get": {

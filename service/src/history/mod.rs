@@ -121,6 +121,44 @@ pub struct InputValues {
     pub gradient: Option<f64>,
 }
 
+/// A bump test as stored: created when it starts, saved whole at each change.
+#[derive(Debug, Clone, PartialEq, Serialize)]
+pub struct BumpTestRow {
+    pub id: i64,
+    #[serde(rename = "loop")]
+    pub loop_name: String,
+    pub input: String,
+    /// `running`, `done` or `aborted`.
+    pub status: String,
+    pub step: f64,
+    pub settle_max_s: f64,
+    /// The four levels the staircase visits: u0, u0 + step, u0 - step, u0.
+    pub setpoints: Vec<f64>,
+    #[serde(serialize_with = "as_rfc3339")]
+    pub started_at: i64,
+    #[serde(serialize_with = "as_rfc3339_opt")]
+    pub finished_at: Option<i64>,
+    pub abort_reason: Option<String>,
+    /// `[{"setpoint", "from", "to", "settled_objective"}]`, as held so far.
+    pub levels: serde_json::Value,
+    /// What `ridgeline tune --json` prints for the record of the test, once done.
+    pub result: Option<serde_json::Value>,
+    /// Why a finished test's record gave no tuning.
+    pub fit_error: Option<String>,
+    pub actor: String,
+}
+
+fn as_rfc3339<S: serde::Serializer>(ms: &i64, s: S) -> Result<S::Ok, S::Error> {
+    s.serialize_str(&rfc3339(*ms))
+}
+
+fn as_rfc3339_opt<S: serde::Serializer>(ms: &Option<i64>, s: S) -> Result<S::Ok, S::Error> {
+    match ms {
+        Some(ms) => s.serialize_str(&rfc3339(*ms)),
+        None => s.serialize_none(),
+    }
+}
+
 /// A stored event: the event and its id in history.
 #[derive(Debug, Clone, PartialEq)]
 pub struct EventRow {
@@ -165,7 +203,17 @@ impl History {
             .run(&pool)
             .await
             .map_err(|e| HistoryError::Migrate { path: path.to_owned(), reason: e.to_string() })?;
-        Ok(History { pool, path: path.into(), writes_ok: Arc::new(std::sync::atomic::AtomicBool::new(true)) })
+        let history = History {
+            pool,
+            path: path.into(),
+            writes_ok: Arc::new(std::sync::atomic::AtomicBool::new(true)),
+        };
+        // One service per store (the instance lock), so a test still running is a stopped one's.
+        let aborted = history.abort_unfinished_bump_tests().await.map_err(|e| open_error(e.to_string()))?;
+        if aborted > 0 {
+            tracing::warn!(aborted, "bump tests left running by a service that stopped are marked aborted");
+        }
+        Ok(history)
     }
 
     /// The sender loops and the API use, and the writer task that drains it.
@@ -298,6 +346,95 @@ impl History {
                 Ok(StoredEstimate { input: r.try_get(0)?, estimate: r.try_get(1)?, at_ms: r.try_get(2)? })
             })
             .collect()
+    }
+
+    /// Stores a new bump test (its `id` is ignored) and returns its id.
+    pub async fn create_bump_test(&self, row: &BumpTestRow) -> Result<i64, HistoryError> {
+        let id = sqlx::query(
+            "INSERT INTO bump_tests (loop, input, status, step, settle_max_s, setpoints, started_at_ms,
+                 finished_at_ms, abort_reason, levels, result, fit_error, actor)
+             VALUES (?1, ?2, ?3, ?4, ?5, ?6, ?7, ?8, ?9, ?10, ?11, ?12, ?13)",
+        )
+        .bind(&row.loop_name)
+        .bind(&row.input)
+        .bind(&row.status)
+        .bind(row.step)
+        .bind(row.settle_max_s)
+        .bind(serde_json::to_string(&row.setpoints).unwrap_or_default())
+        .bind(row.started_at)
+        .bind(row.finished_at)
+        .bind(&row.abort_reason)
+        .bind(row.levels.to_string())
+        .bind(row.result.as_ref().map(|r| r.to_string()))
+        .bind(&row.fit_error)
+        .bind(&row.actor)
+        .execute(&self.pool)
+        .await?
+        .last_insert_rowid();
+        Ok(id)
+    }
+
+    /// Saves what changed in a bump test: status, end, reason, levels and result.
+    pub async fn save_bump_test(&self, row: &BumpTestRow) -> Result<(), HistoryError> {
+        sqlx::query(
+            "UPDATE bump_tests SET status = ?2, finished_at_ms = ?3, abort_reason = ?4, levels = ?5,
+                 result = ?6, fit_error = ?7 WHERE id = ?1",
+        )
+        .bind(row.id)
+        .bind(&row.status)
+        .bind(row.finished_at)
+        .bind(&row.abort_reason)
+        .bind(row.levels.to_string())
+        .bind(row.result.as_ref().map(|r| r.to_string()))
+        .bind(&row.fit_error)
+        .execute(&self.pool)
+        .await?;
+        Ok(())
+    }
+
+    /// One bump test by id.
+    pub async fn bump_test(&self, id: i64) -> Result<Option<BumpTestRow>, HistoryError> {
+        let row = sqlx::query(
+            "SELECT id, loop, input, status, step, settle_max_s, setpoints, started_at_ms, finished_at_ms,
+                 abort_reason, levels, result, fit_error, actor FROM bump_tests WHERE id = ?1",
+        )
+        .bind(id)
+        .fetch_optional(&self.pool)
+        .await?;
+        let Some(r) = row else { return Ok(None) };
+        let json = |text: String| {
+            serde_json::from_str::<serde_json::Value>(&text).map_err(|e| HistoryError::Corrupt(e.to_string()))
+        };
+        Ok(Some(BumpTestRow {
+            id: r.try_get(0)?,
+            loop_name: r.try_get(1)?,
+            input: r.try_get(2)?,
+            status: r.try_get(3)?,
+            step: r.try_get(4)?,
+            settle_max_s: r.try_get(5)?,
+            setpoints: serde_json::from_str(&r.try_get::<String, _>(6)?)
+                .map_err(|e| HistoryError::Corrupt(e.to_string()))?,
+            started_at: r.try_get(7)?,
+            finished_at: r.try_get(8)?,
+            abort_reason: r.try_get(9)?,
+            levels: json(r.try_get(10)?)?,
+            result: r.try_get::<Option<String>, _>(11)?.map(json).transpose()?,
+            fit_error: r.try_get(12)?,
+            actor: r.try_get(13)?,
+        }))
+    }
+
+    /// Marks the bump tests left `running` by a service that stopped as aborted.
+    async fn abort_unfinished_bump_tests(&self) -> Result<u64, HistoryError> {
+        let done = sqlx::query(
+            "UPDATE bump_tests SET status = 'aborted', finished_at_ms = ?1,
+                 abort_reason = 'the service stopped before the test was done'
+             WHERE status = 'running'",
+        )
+        .bind(now_ms())
+        .execute(&self.pool)
+        .await?;
+        Ok(done.rows_affected())
     }
 
     /// Whether the writer's last batch was committed (for `/readyz`): cheap, and takes no

@@ -7,6 +7,7 @@ use crate::expr::Expr;
 use crate::seek::guard::{ObjectiveFault, check_objective};
 use crate::seek::{GuardActions, InputState, Seeker};
 
+use super::bump::Staircase;
 use super::states::{Effect, Event, Machine, StillFaulty};
 pub use super::states::{State, Trip};
 
@@ -45,6 +46,10 @@ pub enum Cause {
     Asked(Mode),
     /// An operator asked for a mode once the fault had cleared, which ended the trip.
     Acknowledged(Mode),
+    /// An operator started a bump test.
+    TestStarted,
+    /// The bump test's staircase is done.
+    TestDone,
 }
 
 impl Cause {
@@ -57,6 +62,8 @@ impl Cause {
             Cause::PermitLost => "the permit tag cannot be read".into(),
             Cause::Asked(m) => format!("{m} asked for"),
             Cause::Acknowledged(m) => format!("{m} asked for once the fault had cleared"),
+            Cause::TestStarted => "a bump test started".into(),
+            Cause::TestDone => "the bump test is done".into(),
         }
     }
 }
@@ -84,6 +91,30 @@ pub struct TickReport {
 /// Why a mode change was refused: the fault that keeps the loop in fallback.
 #[derive(Debug, Clone, PartialEq)]
 pub struct Refused(pub String);
+
+/// Why a bump test cannot start.
+#[derive(Debug, Clone, PartialEq)]
+pub enum TestRefused {
+    /// Not in this state (an HTTP 409).
+    Conflict(String),
+    /// A level would leave the input's bounds (an HTTP 422).
+    OutOfBounds(String),
+}
+
+/// How a bump test ended.
+#[derive(Debug, Clone, PartialEq)]
+pub enum TestOutcome {
+    Done,
+    /// Why it was cut short: a trip, the permit, an operator's request.
+    Aborted(String),
+}
+
+/// A bump test that has ended, with everything it recorded.
+#[derive(Debug, Clone)]
+pub struct FinishedTest {
+    pub staircase: Staircase,
+    pub outcome: TestOutcome,
+}
 
 /// One loop's watchdog, state, core and estimates.
 #[derive(Debug)]
@@ -120,6 +151,12 @@ pub struct Control {
     applied: Vec<f64>,
     transitions: Vec<Transition>,
     ticks: u64,
+    tick_s: f64,
+    max_rates: Vec<f64>,
+    /// The bump test running (in state `testing`).
+    test: Option<Staircase>,
+    /// A bump test that has ended, until the task takes it.
+    finished_test: Option<FinishedTest>,
 }
 
 impl Control {
@@ -150,6 +187,10 @@ impl Control {
             fault: None,
             transitions: Vec::new(),
             ticks: 0,
+            tick_s: config.tick_s,
+            max_rates: config.inputs.iter().map(|i| i.max_rate_per_s).collect(),
+            test: None,
+            finished_test: None,
         }
     }
 
@@ -235,6 +276,16 @@ impl Control {
         if matches!(effect, Effect::Recover | Effect::Restart) {
             self.wants_read_back = true;
             self.restart_filters = true;
+        }
+        if from == State::Testing
+            && self.machine.state != State::Testing
+            && let Some(staircase) = self.test.take()
+        {
+            let outcome = match cause {
+                Cause::TestDone => TestOutcome::Done,
+                other => TestOutcome::Aborted(other.describe()),
+            };
+            self.finished_test = Some(FinishedTest { staircase, outcome });
         }
         if self.machine.state != from || self.machine.tripped != tripped_before {
             self.transitions.push(Transition { from, to: self.machine.state, cause });
@@ -322,6 +373,23 @@ impl Control {
             },
             (_, _) if waiting => quiet,
             (State::Holding, _) => TickReport { write: true, guard: self.seeker.hold(), ..quiet },
+            // The other inputs hold their estimates; the tested one follows the staircase.
+            (State::Testing, _) => {
+                let guard = self.seeker.hold();
+                let at_s = self.test_time_s(tick);
+                let next = self.test.as_mut().and_then(|t| Some((t.input, t.tick(at_s, checked.ok())?)));
+                match next {
+                    Some((input, setpoint)) => {
+                        self.applied = self.seeker.inputs().iter().map(|i| i.applied).collect();
+                        self.applied[input] = setpoint;
+                        TickReport { write: true, guard, ..quiet }
+                    }
+                    None => {
+                        let _ = self.handle(Event::TestEnd, Cause::TestDone);
+                        quiet
+                    }
+                }
+            }
             (State::Seeking | State::Observing, Ok(j)) => {
                 if std::mem::take(&mut self.restart_filters) {
                     self.seeker.restart();
@@ -336,7 +404,7 @@ impl Control {
                 TickReport { write: state == State::Seeking, guard: self.seeker.hold(), ..quiet }
             }
         };
-        if report.write && state != State::Fallback {
+        if report.write && !matches!(state, State::Fallback | State::Testing) {
             self.applied = self.seeker.inputs().iter().map(|i| i.applied).collect();
         }
         report
@@ -415,6 +483,89 @@ impl Control {
                 self.stale_after_s
             ),
         }
+    }
+
+    /// Starts a bump test on `input` with every input starting from `starts` (the
+    /// estimates of a writing loop, else the setpoints read back from the PLC): the loop
+    /// is `testing` from the next tick. Returns the four levels.
+    pub fn start_test(
+        &mut self,
+        input: usize,
+        step: f64,
+        settle_max_s: f64,
+        starts: &[f64],
+        tick: u64,
+    ) -> Result<[f64; 4], TestRefused> {
+        let conflict = |why: &str| Err(TestRefused::Conflict(why.to_owned()));
+        match self.machine.state {
+            _ if !self.started => return conflict("the loop has not started yet"),
+            State::Testing => return conflict("a bump test is already running on this loop"),
+            State::Fallback => return conflict("the loop is in fallback: acknowledge the trip first"),
+            State::NoPermit => return conflict("the PLC does not permit this loop to write"),
+            State::Stopped => {
+                return conflict("the loop is stopped: put it in observing, holding or seeking first");
+            }
+            _ if !self.permitted() => return conflict("the PLC's permission to write does not stand"),
+            _ => {}
+        }
+        let (Some(state), Some(&u0)) = (self.seeker.inputs().get(input), starts.get(input)) else {
+            return conflict("the loop has no such input");
+        };
+        if starts.len() != self.seeker.inputs().len() || starts.iter().any(|s| !s.is_finite()) {
+            return conflict("the setpoints in the PLC are not all known numbers");
+        }
+        let bounds = state.guard.bounds;
+        for (name, level) in [("u0", u0), ("u0 + step", u0 + step), ("u0 - step", u0 - step)] {
+            if level > bounds.max {
+                return Err(TestRefused::OutOfBounds(format!(
+                    "{name} = {} is above the upper bound {} (bounds {bounds})",
+                    crate::config::show(level),
+                    crate::config::show(bounds.max)
+                )));
+            }
+            if level < bounds.min {
+                return Err(TestRefused::OutOfBounds(format!(
+                    "{name} = {} is below the lower bound {} (bounds {bounds})",
+                    crate::config::show(level),
+                    crate::config::show(bounds.min)
+                )));
+            }
+        }
+        // The estimates become where the test starts, so that a cancel restores it and the
+        // other inputs hold where they are.
+        self.seeker.reset_estimates(starts);
+        let staircase = Staircase::new(
+            input,
+            u0,
+            step,
+            self.max_rates[input],
+            self.tick_s,
+            settle_max_s,
+            self.test_time_s(tick),
+        );
+        let levels = staircase.targets();
+        let _ = self.handle(Event::TestStart, Cause::TestStarted);
+        if self.machine.state != State::Testing {
+            return conflict("the loop cannot start a test in its state");
+        }
+        self.test = Some(staircase);
+        Ok(levels)
+    }
+
+    /// A bump test's clock: the tick index times the tick, so that its record is on the
+    /// loop's time grid, and in plant time when the service runs faster than real time.
+    pub fn test_time_s(&self, tick: u64) -> f64 {
+        tick as f64 * self.tick_s
+    }
+
+    /// The bump test running, if any.
+    pub fn test(&self) -> Option<&Staircase> {
+        self.test.as_ref()
+    }
+
+    /// A bump test that has ended since last asked.
+    pub fn take_finished_test(&mut self) -> Option<FinishedTest> {
+        self.finished_test.take()
     }
 
     /// The state changes since last asked, oldest first.

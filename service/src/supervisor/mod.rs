@@ -1,6 +1,7 @@
 //! The live loops: one task per loop on its tick, deciding through [`control`] (shared
 //! with the rehearsal) and publishing a [`status::LoopStatus`] on a watch channel.
 
+pub mod bump;
 pub mod control;
 pub mod states;
 pub mod status;

@@ -5,7 +5,8 @@
 //! its recovery condition holds; when the PLC answers 0 to its permit it is `no_permit`
 //! and writes nothing (a permit that cannot be read is a fault, not an answer). A trip
 //! is remembered through `no_permit`, so permission returning to a tripped loop brings it
-//! back to `fallback`, not to seeking.
+//! back to `fallback`, not to seeking. A bump test (`testing`) writes like `holding` and
+//! ends on any trip, permit change or operator request, or when its staircase is done.
 
 use crate::config::{Mode, Recover};
 
@@ -18,11 +19,19 @@ pub enum State {
     Stopped,
     Fallback,
     NoPermit,
+    Testing,
 }
 
 impl State {
-    pub const ALL: [State; 6] =
-        [State::Seeking, State::Holding, State::Observing, State::Stopped, State::Fallback, State::NoPermit];
+    pub const ALL: [State; 7] = [
+        State::Seeking,
+        State::Holding,
+        State::Observing,
+        State::Stopped,
+        State::Fallback,
+        State::NoPermit,
+        State::Testing,
+    ];
 
     pub fn as_str(self) -> &'static str {
         match self {
@@ -32,6 +41,7 @@ impl State {
             State::Stopped => "stopped",
             State::Fallback => "fallback",
             State::NoPermit => "no_permit",
+            State::Testing => "testing",
         }
     }
 
@@ -47,7 +57,7 @@ impl State {
 
     /// Whether setpoints are written in this state.
     pub fn writes(self) -> bool {
-        matches!(self, State::Seeking | State::Holding | State::Fallback)
+        matches!(self, State::Seeking | State::Holding | State::Fallback | State::Testing)
     }
 }
 
@@ -92,8 +102,13 @@ pub enum Event {
     /// The permit tag has not been read for `stale_after_s`: the PLC's last answer no
     /// longer stands, and a writing loop trips (`stale`) whatever that answer was.
     PermitLost,
-    /// An operator asks for a mode (from fallback this is the acknowledgement).
+    /// An operator asks for a mode (from fallback this is the acknowledgement; from
+    /// testing it cancels the test).
     Ask(Mode),
+    /// An operator starts a bump test.
+    TestStart,
+    /// The bump test's staircase is done.
+    TestEnd,
 }
 
 /// What a transition does besides changing the state.
@@ -137,13 +152,17 @@ impl Machine {
         let writing_mode = matches!(self.mode, Mode::Seeking | Mode::Holding);
         let (state, effect) = match (self.state, event) {
             // A writing loop trips on any fault.
-            (Seeking | Holding, Event::Fault(trip)) => (Fallback, Effect::Latch(trip)),
+            (Seeking | Holding | Testing, Event::Fault(trip)) => (Fallback, Effect::Latch(trip)),
+            (Seeking | Holding | Observing, Event::TestStart) => (Testing, Effect::None),
+            (Testing, Event::TestEnd) => {
+                (State::of(self.mode), if writing_mode { Effect::Restart } else { Effect::None })
+            }
             // Without permission a loop writes nothing, but remembers a trip for later.
             (NoPermit, Event::Fault(trip)) if self.tripped.is_none() => (NoPermit, Effect::Latch(trip)),
-            (Seeking | Holding | Fallback, Event::PermitWithdrawn) => (NoPermit, Effect::None),
+            (Seeking | Holding | Fallback | Testing, Event::PermitWithdrawn) => (NoPermit, Effect::None),
             (NoPermit, Event::PermitGranted) if self.tripped.is_some() => (Fallback, Effect::None),
             // A permit that cannot be read is a fault of the link, not the PLC saying no.
-            (Seeking | Holding | NoPermit, Event::PermitLost) => match self.tripped {
+            (Seeking | Holding | NoPermit | Testing, Event::PermitLost) => match self.tripped {
                 Some(_) => (Fallback, Effect::None),
                 None => (Fallback, Effect::Latch(Trip::Stale)),
             },
@@ -175,7 +194,9 @@ impl Machine {
                 }
             },
             (_, Event::Ask(mode)) => {
-                let starts_writing = matches!(mode, Mode::Seeking | Mode::Holding) && !writing_mode;
+                // Leaving a test, a writing mode starts again from the setpoint restored.
+                let starts_writing =
+                    matches!(mode, Mode::Seeking | Mode::Holding) && (!writing_mode || self.state == Testing);
                 self.mode = mode;
                 let writes = matches!(mode, Mode::Seeking | Mode::Holding);
                 let state = if writes && !self.permitted { NoPermit } else { State::of(mode) };

@@ -8,11 +8,13 @@ use tokio::sync::{mpsc, oneshot, watch};
 use tokio::time::{Instant, MissedTickBehavior};
 use tokio_util::sync::CancellationToken;
 
-use super::control::{Cause, Control, Permit, Reading, State, TickReport};
+use super::control::{
+    Cause, Control, FinishedTest, Permit, Reading, State, TestOutcome, TestRefused, TickReport,
+};
 use super::status::{InputStatus, LoopStatus};
 use crate::config::{Config, LoopConfig, Mode, OnTrip, Range};
 use crate::field::{LinkError, Links, LoopIo, Urgency};
-use crate::history::{History, InputSample, SampleRecord, now_ms, rfc3339};
+use crate::history::{BumpTestRow, History, InputSample, SampleRecord, now_ms, rfc3339};
 pub use crate::report::Reporting;
 use crate::seek::guard::starting_point;
 
@@ -22,6 +24,9 @@ pub enum CommandError {
     /// Not possible in the loop's current state (an HTTP 409).
     #[error("{0}")]
     Conflict(String),
+    /// Well-formed but not possible with these values (an HTTP 422).
+    #[error("{0}")]
+    Unprocessable(String),
 }
 
 /// A change asked of a running loop through its [`LoopHandle`]; it takes effect at the
@@ -37,6 +42,13 @@ pub enum Command {
         bounds: Range,
         actor: String,
         reply: oneshot::Sender<Result<LoopStatus, CommandError>>,
+    },
+    BumpTest {
+        input: usize,
+        step: f64,
+        settle_max_s: f64,
+        actor: String,
+        reply: oneshot::Sender<Result<BumpTestRow, CommandError>>,
     },
 }
 
@@ -65,10 +77,22 @@ impl LoopHandle {
         self.ask(|reply| Command::SetBounds { input, bounds, actor: actor.to_owned(), reply }).await
     }
 
-    async fn ask(
+    /// Starts a bump test on input `input`; answers with the stored test once running.
+    pub async fn bump_test(
         &self,
-        command: impl FnOnce(oneshot::Sender<Result<LoopStatus, CommandError>>) -> Command,
-    ) -> Result<LoopStatus, CommandError> {
+        input: usize,
+        step: f64,
+        settle_max_s: f64,
+        actor: &str,
+    ) -> Result<BumpTestRow, CommandError> {
+        self.ask(|reply| Command::BumpTest { input, step, settle_max_s, actor: actor.to_owned(), reply })
+            .await
+    }
+
+    async fn ask<T>(
+        &self,
+        command: impl FnOnce(oneshot::Sender<Result<T, CommandError>>) -> Command,
+    ) -> Result<T, CommandError> {
         let stopping = || CommandError::Conflict(format!("loop {} is stopping", self.config.name));
         let (reply, answer) = oneshot::channel();
         self.commands.send(command(reply)).await.map_err(|_| stopping())?;
@@ -107,6 +131,8 @@ pub struct LoopTask {
     /// Whether the last write of each input failed, so each failure is logged once.
     write_failing: Vec<bool>,
     read_failing: bool,
+    /// The bump test running, as stored, and when (Unix ms, loop clock s) it started.
+    test: Option<(BumpTestRow, i64, f64)>,
 }
 
 impl LoopTask {
@@ -147,6 +173,7 @@ impl LoopTask {
             heartbeat_written: None,
             heartbeat_conflict: false,
             read_failing: false,
+            test: None,
         };
         (task, LoopHandle { config: loop_config, status: receiver, commands: commands_in })
     }
@@ -215,9 +242,160 @@ impl LoopTask {
             self.heartbeat = self.heartbeat.wrapping_add(1);
         }
         self.report_transitions("system");
+        self.follow_test().await;
         self.publish();
         self.record(&report);
         report
+    }
+
+    /// Starts a bump test: from the estimate of a loop that writes, else from the setpoint
+    /// the PLC holds. Stored before the first step is written.
+    async fn start_test(
+        &mut self,
+        input: usize,
+        step: f64,
+        settle_max_s: f64,
+        actor: &str,
+    ) -> Result<BumpTestRow, CommandError> {
+        let Some(history) = self.resume.clone() else {
+            return Err(CommandError::Conflict("there is no history store to keep the test in".into()));
+        };
+        let Some(cfg) = self.config.inputs.get(input) else {
+            return Err(CommandError::Conflict(format!("loop {} has no input {input}", self.name)));
+        };
+        let name = cfg.name.clone();
+        // Where every input starts: what the loop writes, or what the PLC holds.
+        let starts: Vec<f64> = if self.control.is_started() && self.control.state().writes() {
+            self.control.inputs().iter().map(|i| i.estimate).collect()
+        } else {
+            let back = self.read_back().await.map_err(|e| {
+                CommandError::Conflict(format!("cannot read the setpoints from the PLC: {e}"))
+            })?;
+            back.into_iter().map(|v| v.unwrap_or(f64::NAN)).collect()
+        };
+        let u0 = starts[input];
+        let next_tick = self.last_tick.map_or(0, |t| t + 1);
+        let origin_s = self.control.test_time_s(next_tick);
+        let setpoints =
+            self.control.start_test(input, step, settle_max_s, &starts, next_tick).map_err(|e| match e {
+                TestRefused::Conflict(m) => CommandError::Conflict(format!("loop {}: {m}", self.name)),
+                TestRefused::OutOfBounds(m) => CommandError::Unprocessable(format!("input `{name}`: {m}")),
+            })?;
+        let started_at = now_ms();
+        let mut row = BumpTestRow {
+            id: 0,
+            loop_name: self.config.name.clone(),
+            input: name.clone(),
+            status: "running".into(),
+            step,
+            settle_max_s,
+            setpoints: setpoints.to_vec(),
+            started_at,
+            finished_at: None,
+            abort_reason: None,
+            levels: serde_json::json!([]),
+            result: None,
+            fit_error: None,
+            actor: actor.to_owned(),
+        };
+        match history.create_bump_test(&row).await {
+            Ok(id) => row.id = id,
+            Err(e) => {
+                // Not kept, not run: cancel at once (the loop's own mode again).
+                let _ = self.control.ask(self.control.mode());
+                self.control.take_finished_test();
+                self.control.take_transitions();
+                self.write_estimates().await;
+                return Err(CommandError::Conflict(format!("cannot store the bump test in history: {e}")));
+            }
+        }
+        tracing::info!(r#loop = %self.name, input = %name, id = row.id, step, u0, actor = %actor, "bump test started");
+        self.reporting.event(
+            Some(&self.name),
+            "bump_test_started",
+            serde_json::json!({"id": row.id, "input": name, "step": step, "setpoints": setpoints, "settle_max_s": settle_max_s}),
+            actor,
+        );
+        self.test = Some((row.clone(), started_at, origin_s));
+        Ok(row)
+    }
+
+    /// Stores the levels of the running bump test as they end, and the test once it ends;
+    /// a test that is done is fitted off the loop's task and its result stored.
+    async fn follow_test(&mut self) {
+        let Some((row, origin_ms, origin_s)) = &mut self.test else { return };
+        let finished = self.control.take_finished_test();
+        let staircase = match (&finished, self.control.test()) {
+            (Some(f), _) => &f.staircase,
+            (None, Some(s)) => s,
+            (None, None) => return,
+        };
+        let at_ms = |s: f64| *origin_ms + ((s - *origin_s) * 1000.0).round() as i64;
+        let levels: Vec<serde_json::Value> = staircase
+            .levels()
+            .iter()
+            .map(|l| {
+                serde_json::json!({
+                    "setpoint": l.setpoint, "from": rfc3339(at_ms(l.from_s)), "to": rfc3339(at_ms(l.to_s)),
+                    "settled_objective": l.settled_objective, "settled": l.settled,
+                })
+            })
+            .collect();
+        let levels_changed = row.levels.as_array().is_none_or(|a| a.len() != levels.len());
+        row.levels = serde_json::Value::Array(levels);
+        let Some(history) = self.resume.clone() else { return };
+        let Some(FinishedTest { staircase, outcome }) = finished else {
+            if levels_changed && let Err(e) = history.save_bump_test(row).await {
+                tracing::warn!(r#loop = %self.name, id = row.id, error = %e, "cannot store the bump test's levels");
+            }
+            return;
+        };
+        let (mut row, ..) = self.test.take().expect("a running test");
+        row.finished_at = Some(now_ms());
+        let detail = serde_json::json!({"id": row.id, "input": row.input, "levels": row.levels});
+        match outcome {
+            TestOutcome::Aborted(reason) => {
+                tracing::warn!(r#loop = %self.name, id = row.id, reason = %reason, "bump test aborted");
+                row.status = "aborted".into();
+                let mut detail = detail;
+                detail["reason"] = serde_json::json!(reason);
+                row.abort_reason = Some(reason);
+                self.reporting.event(Some(&self.name), "bump_test_aborted", detail, "system");
+                if let Err(e) = history.save_bump_test(&row).await {
+                    tracing::warn!(r#loop = %self.name, id = row.id, error = %e, "cannot store the aborted bump test");
+                }
+            }
+            TestOutcome::Done => {
+                tracing::info!(r#loop = %self.name, id = row.id, "bump test done; fitting the plant");
+                self.reporting.event(Some(&self.name), "bump_test_done", detail, "system");
+                let cfg = &self.config.inputs[staircase.input];
+                let request = crate::tune::Request {
+                    input: cfg.name.clone(),
+                    tick_s: Some(self.config.tick_s),
+                    bounds: Some(self.control.inputs()[staircase.input].guard.bounds),
+                    direction: Some(self.config.direction),
+                    configured_rate_per_s: Some(cfg.max_rate_per_s),
+                    ..Default::default()
+                };
+                let name = self.name.clone();
+                // The fit and its proof take a CPU for a moment: off the loop's task. The
+                // test shows `running` until its result is stored.
+                tokio::spawn(async move {
+                    let record = staircase.record().clone();
+                    let fitted =
+                        tokio::task::spawn_blocking(move || crate::tune::tune(&record, &request)).await;
+                    match fitted {
+                        Ok(Ok(result)) => row.result = serde_json::to_value(&result).ok(),
+                        Ok(Err(e)) => row.fit_error = Some(e.to_string()),
+                        Err(e) => row.fit_error = Some(format!("the fit failed: {e}")),
+                    }
+                    row.status = "done".into();
+                    if let Err(e) = history.save_bump_test(&row).await {
+                        tracing::warn!(r#loop = %name, id = row.id, error = %e, "cannot store the bump test's result");
+                    }
+                });
+            }
+        }
     }
 
     /// Checks that the heartbeat register still holds the value this loop wrote last. If
@@ -380,6 +558,8 @@ impl LoopTask {
                 Cause::PermitWithdrawn => "permit_withdrawn",
                 Cause::PermitGranted => "permit_granted",
                 Cause::PermitLost => "permit_lost",
+                // bump_test_started and bump_test_done say it, with the test's details.
+                Cause::TestStarted | Cause::TestDone => "",
                 // The mode_changed event of the request says it all.
                 Cause::Asked(_) => "",
             };
@@ -456,6 +636,7 @@ impl LoopTask {
             Command::SetMode { mode, actor, reply } => {
                 let from = self.control.mode();
                 let was_dithering = self.control.dithering();
+                let was_testing = self.control.state() == State::Testing;
                 if let Err(refused) = self.control.ask(mode) {
                     let _ = reply.send(Err(CommandError::Conflict(format!(
                         "loop {} stays in fallback: {}",
@@ -469,6 +650,10 @@ impl LoopTask {
                 if was_dithering && !self.control.state().writes() {
                     self.write_estimates().await;
                 }
+                // A cancelled bump test puts the setpoint back where the test started.
+                if was_testing && self.control.permitted() {
+                    self.write_estimates().await;
+                }
                 if from != mode {
                     tracing::info!(r#loop = %self.name, from = %from, to = %mode, actor = %actor, "mode changed");
                     self.reporting.event(
@@ -479,8 +664,15 @@ impl LoopTask {
                     );
                 }
                 self.report_transitions(&actor);
+                self.follow_test().await;
                 self.publish();
                 let _ = reply.send(Ok(self.status.borrow().clone()));
+            }
+            Command::BumpTest { input, step, settle_max_s, actor, reply } => {
+                let started = self.start_test(input, step, settle_max_s, &actor).await;
+                self.report_transitions(&actor);
+                self.publish();
+                let _ = reply.send(started);
             }
             Command::SetBounds { input, bounds, actor, reply } => {
                 let Some(before) = self.control.inputs().get(input).map(|i| i.guard.bounds) else {
@@ -539,6 +731,14 @@ impl LoopTask {
             }
             None => serde_json::Value::Null,
         };
+        if let (Some((mut row, ..)), Some(history)) = (self.test.take(), &self.resume) {
+            row.status = "aborted".into();
+            row.finished_at = Some(now_ms());
+            row.abort_reason = Some("the service stopped".into());
+            if let Err(e) = history.save_bump_test(&row).await {
+                tracing::warn!(r#loop = %self.name, id = row.id, error = %e, "cannot store the aborted bump test");
+            }
+        }
         self.reporting.event(
             Some(&self.name),
             "loop_stopped",
