@@ -250,3 +250,28 @@ fn a_cut_link_trips_the_loop_to_fallback_and_aborts_the_test() {
     assert_eq!(answer.status, 409, "{}", answer.body);
     assert!(answer.body.contains("fallback"), "{}", answer.body);
 }
+
+#[test]
+fn a_mode_change_cancels_the_test_and_puts_the_setpoint_back_at_u0() {
+    let bench = Bench::start();
+    let id = started(&bench, r#"{"step": 0.3}"#);
+    wait_until("the staircase has left u0", Duration::from_secs(20), || {
+        bench.writes().iter().any(|&u| u > 2.6)
+    });
+    let bearer = format!("Bearer {OPERATOR}");
+    let answer = http_request(
+        bench.api,
+        "PUT",
+        "/api/v1/loops/untuned/mode",
+        &[("Authorization", &bearer)],
+        Some(r#"{"mode": "observing"}"#),
+    )
+    .expect("the API answers");
+    assert_eq!(answer.status, 200, "{}", answer.body);
+    let test = bench.finished(id, Duration::from_secs(10));
+    assert_eq!(test["status"], "aborted");
+    assert!(test["abort_reason"].as_str().unwrap().starts_with("cancelled"), "{test:#}");
+    let words = read_holding_registers(bench.plant_port, 0, 2).expect("the register reads");
+    assert_eq!(f32_from_words(&words), 2.5, "u0 restored");
+    assert_eq!(bench.status()["state"], "observing");
+}

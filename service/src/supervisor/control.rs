@@ -283,6 +283,9 @@ impl Control {
         {
             let outcome = match cause {
                 Cause::TestDone => TestOutcome::Done,
+                Cause::Asked(_) | Cause::Acknowledged(_) => {
+                    TestOutcome::Aborted(format!("cancelled: {}", cause.describe()))
+                }
                 other => TestOutcome::Aborted(other.describe()),
             };
             self.finished_test = Some(FinishedTest { staircase, outcome });
