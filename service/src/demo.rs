@@ -45,6 +45,14 @@ pub async fn run(options: &Options, stop: impl Future<Output = ()>) -> anyhow::R
         .await
         .context("cannot start the simulated plant on loopback")?;
     let plant_addr = server.local_addr()?;
+    // An operator token for this run only, so the demo can be driven through the API
+    // (modes, bounds, bump tests) as a plant would be.
+    let token = crate::api::new_token().context("cannot get random bytes for the demo's operator token")?;
+    config.access.push(config::Access {
+        name: "demo-operator".into(),
+        token_sha256: crate::api::token_sha256(&token),
+        role: config::Role::Operator,
+    });
     for link in &mut config.links {
         if let LinkKind::ModbusTcp { address, .. } = &mut link.kind {
             *address = plant_addr.to_string();
@@ -67,11 +75,12 @@ pub async fn run(options: &Options, stop: impl Future<Output = ()>) -> anyhow::R
         .await
         .context("the demo's API needs a free port; pick one with --listen 127.0.0.1:PORT")?;
     println!(
-        "Ridgeline demo: a simulated boiler and chilled-water plant on Modbus/TCP {plant_addr}, \
+        "Ridgeline demo: a simulated boiler, chilled-water plant and dryer on Modbus/TCP {plant_addr}, \
          the service's API on http://{}/api/v1/loops, {}x real time.",
         app.local_addr()?,
         options.speed
     );
+    println!("Operator token for this run (Authorization: Bearer ...): {token}");
     println!(
         "Every {} s: each loop's state, objective, applied setpoint and distance to the plant's true optimum. \
          History in {}. Ctrl-C stops.",

@@ -111,6 +111,8 @@ pub struct TuneResult {
     pub predicted: Predicted,
     pub rehearsed: Rehearsed,
     pub warnings: Vec<String>,
+    /// The tuning as TOML to paste into the loop.
+    pub toml: String,
     /// The fitted plant as a plant-model file (`tune --plant-out` writes it).
     #[serde(skip)]
     pub plant_toml: String,
@@ -210,6 +212,7 @@ pub fn tune(record: &Record, request: &Request) -> Result<TuneResult, TuneError>
         time_constant_s: request.time_constant_s,
         max_loss: request.max_loss.or((fit.noise_std == 0.0).then_some(0.01 * fit.response)),
         configured_rate_per_s: request.configured_rate_per_s,
+        largest_move: Some(fit.levels.iter().map(|l| (l.setpoint - fit.map.u0).abs()).fold(0.0, f64::max)),
     };
     let r = recommend::recommend(&model, &goal);
     warnings.extend(r.warnings.iter().cloned());
@@ -223,42 +226,45 @@ pub fn tune(record: &Record, request: &Request) -> Result<TuneResult, TuneError>
                 .into(),
         );
     }
+    let model = FittedModel {
+        lag_s: fit.lag_s,
+        lag_s_std: fit.lag_s_std,
+        dead_time_s: fit.dead_time_s,
+        dead_time_s_std: fit.dead_time_s_std,
+        gain_per_level: fit.gain_per_level.clone(),
+        curvature: second.abs(),
+        curvature_std,
+        slope: fit.map.slope(),
+        vertex,
+        noise_std: fit.noise_std,
+        fit_rmse: fit.fit_rmse,
+        levels: fit
+            .levels
+            .iter()
+            .map(|l| LevelOut {
+                setpoint: l.setpoint,
+                from_s: l.from_s,
+                to_s: l.to_s,
+                settled_objective: l.settled_objective,
+            })
+            .collect(),
+    };
+    let recommended = Recommended {
+        tick_s,
+        dither_period_s: r.dither_period_s.value,
+        dither_amplitude: r.dither_amplitude.value,
+        highpass_hz: r.highpass_hz.value,
+        phase_deg: r.phase_deg.value,
+        gain: r.gain.value,
+        max_rate_per_s: r.max_rate_per_s.value,
+        bounds: [bounds.min, bounds.max],
+        direction: direction.as_str(),
+    };
     Ok(TuneResult {
         input: request.input.clone(),
-        model: FittedModel {
-            lag_s: fit.lag_s,
-            lag_s_std: fit.lag_s_std,
-            dead_time_s: fit.dead_time_s,
-            dead_time_s_std: fit.dead_time_s_std,
-            gain_per_level: fit.gain_per_level.clone(),
-            curvature: second.abs(),
-            curvature_std,
-            slope: fit.map.slope(),
-            vertex,
-            noise_std: fit.noise_std,
-            fit_rmse: fit.fit_rmse,
-            levels: fit
-                .levels
-                .iter()
-                .map(|l| LevelOut {
-                    setpoint: l.setpoint,
-                    from_s: l.from_s,
-                    to_s: l.to_s,
-                    settled_objective: l.settled_objective,
-                })
-                .collect(),
-        },
-        recommended: Recommended {
-            tick_s,
-            dither_period_s: r.dither_period_s.value,
-            dither_amplitude: r.dither_amplitude.value,
-            highpass_hz: r.highpass_hz.value,
-            phase_deg: r.phase_deg.value,
-            gain: r.gain.value,
-            max_rate_per_s: r.max_rate_per_s.value,
-            bounds: [bounds.min, bounds.max],
-            direction: direction.as_str(),
-        },
+        toml: snippet(&request.input, &model, &recommended),
+        model,
+        recommended,
         reasons: Reasons {
             dither_period_s: r.dither_period_s.reason.clone(),
             dither_amplitude: r.dither_amplitude.reason.clone(),
@@ -272,6 +278,28 @@ pub fn tune(record: &Record, request: &Request) -> Result<TuneResult, TuneError>
         warnings,
         plant_toml: case.plant_toml(1),
     })
+}
+
+/// The tuning as TOML to paste into the loop: its filter, its model, and the input's keys.
+fn snippet(input: &str, m: &FittedModel, r: &Recommended) -> String {
+    format!(
+        "# paste into the loop (tick_s = {tick}):\n\
+         [loops.filter]\nhighpass_hz = {hp}\nphase_deg = {phase}\n\
+         [loops.model]\nlag_s = {lag}\ndead_time_s = {dead}\ncurvature = {curvature}\nnoise_std = {noise}\n\
+         # and in [[loops.inputs]] name = \"{input}\":\n\
+         max_rate_per_s = {rate}\ndither_amplitude = {a}\ndither_period_s = {period}\ngain = {gain}\n",
+        tick = show(r.tick_s),
+        hp = show(r.highpass_hz),
+        phase = show(r.phase_deg),
+        lag = show(round4(m.lag_s)),
+        dead = show(round4(m.dead_time_s)),
+        curvature = show(round4(m.curvature)),
+        noise = show(round4(m.noise_std)),
+        rate = show(r.max_rate_per_s),
+        a = show(r.dither_amplitude),
+        period = show(r.dither_period_s),
+        gain = show(r.gain),
+    )
 }
 
 fn or_dash(x: Option<f64>, digits: usize) -> String {
@@ -341,30 +369,7 @@ impl fmt::Display for TuneResult {
         for w in &self.warnings {
             writeln!(f, "warning: {w}")?;
         }
-        writeln!(f, "\n# paste into the loop (tick_s = {}):", show(r.tick_s))?;
-        writeln!(
-            f,
-            "[loops.filter]\nhighpass_hz = {}\nphase_deg = {}",
-            show(r.highpass_hz),
-            show(r.phase_deg)
-        )?;
-        writeln!(
-            f,
-            "[loops.model]\nlag_s = {}\ndead_time_s = {}\ncurvature = {}\nnoise_std = {}",
-            show(round4(m.lag_s)),
-            show(round4(m.dead_time_s)),
-            show(round4(m.curvature)),
-            show(round4(m.noise_std))
-        )?;
-        writeln!(f, "# and in [[loops.inputs]] name = \"{}\":", self.input)?;
-        write!(
-            f,
-            "max_rate_per_s = {}\ndither_amplitude = {}\ndither_period_s = {}\ngain = {}",
-            show(r.max_rate_per_s),
-            show(r.dither_amplitude),
-            show(r.dither_period_s),
-            show(r.gain)
-        )
+        write!(f, "\n{}", self.toml)
     }
 }
 

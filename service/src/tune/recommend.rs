@@ -95,6 +95,9 @@ pub struct Goal {
     pub max_loss: Option<f64>,
     /// A rate limit already configured, to compare with what the loop needs.
     pub configured_rate_per_s: Option<f64>,
+    /// The largest move from the starting setpoint in the record: the dither goes no
+    /// further than the process was agreed to go in the test.
+    pub largest_move: Option<f64>,
 }
 
 /// One recommended value and why.
@@ -167,13 +170,22 @@ pub fn recommend(model: &PlantModel, goal: &Goal) -> Recommendation {
     };
     let span = goal.bounds.span();
     let by_loss = (4.0 * max_loss / model.curvature).sqrt() / g;
-    let (amplitude, amplitude_reason) = if by_loss <= span / 4.0 {
+    let largest_move = goal.largest_move.unwrap_or(f64::INFINITY);
+    let (amplitude, amplitude_reason) = if by_loss <= (span / 4.0).min(largest_move) {
         (
             round4(by_loss),
             format!(
                 "the largest whose steady loss |d2J/du2| (a |G|)^2 / 4 stays within {loss_reason}, with the plant passing \
                  {:.3} of the dither",
                 g
+            ),
+        )
+    } else if largest_move <= span / 4.0 {
+        (
+            round4(largest_move),
+            format!(
+                "the largest move of the bump test, which the process was agreed to take: {loss_reason} would allow {}",
+                show(round4(by_loss))
             ),
         )
     } else {
@@ -282,6 +294,7 @@ mod tests {
             time_constant_s: None,
             max_loss: None,
             configured_rate_per_s: None,
+            largest_move: None,
         }
     }
 
