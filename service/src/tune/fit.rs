@@ -499,10 +499,13 @@ fn initial_guess(record: &Record, runs: &[std::ops::Range<usize>], problem: &Pro
     let cost = |lag: f64, dead: f64| {
         problem.project(&Vector2::new(lag.ln(), dead)).map_or(f64::INFINITY, |(_, r)| r.norm_squared())
     };
-    let mut best = (cost(guess.0, guess.1), guess);
+    // The dead time enters as |theta|, whose difference quotient vanishes at exactly 0:
+    // the search starts at least half a row's spacing away from it.
+    let (lag, dead) = (guess.0, guess.1.max(0.5 * problem.scale_time()));
+    let mut best = (cost(lag, dead), (lag, dead));
     for lag_factor in [0.3, 0.6, 1.0, 1.6, 3.0] {
-        for dead_factor in [0.0, 0.5, 1.0, 1.5] {
-            let candidate = (guess.0 * lag_factor, guess.1 * dead_factor);
+        for dead_factor in [0.1, 0.5, 1.0, 1.5] {
+            let candidate = (lag * lag_factor, dead * dead_factor);
             let c = cost(candidate.0, candidate.1);
             if c < best.0 {
                 best = (c, candidate);
