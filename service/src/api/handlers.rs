@@ -115,8 +115,9 @@ pub async fn set_bounds(
 
 /// A level held at most this long when the request does not say.
 pub const SETTLE_MAX_DEFAULT_S: f64 = 900.0;
-/// The longest a level may be held: a day.
+/// The longest a level may be held: a day, and no more than this many ticks.
 pub const SETTLE_MAX_MAX_S: f64 = 86_400.0;
+pub const SETTLE_MAX_TICKS: f64 = 50_000.0;
 
 #[derive(Debug, Deserialize)]
 #[serde(deny_unknown_fields)]
@@ -150,6 +151,14 @@ pub async fn bump_test(
             "settle_max_s: {settle_max_s} is not between 0 and {SETTLE_MAX_MAX_S} s"
         )));
     }
+    // The test keeps every tick in memory until it is fitted.
+    let ticks = settle_max_s / handle.config.tick_s;
+    if ticks > SETTLE_MAX_TICKS {
+        return Err(ApiError::Unprocessable(format!(
+            "settle_max_s: {settle_max_s} s is {ticks:.0} ticks of {} s; a level may last at most {SETTLE_MAX_TICKS} ticks",
+            handle.config.tick_s
+        )));
+    }
     let row = handle.bump_test(index, request.step, settle_max_s, &caller.name).await.map_err(conflict)?;
     Ok((axum::http::StatusCode::ACCEPTED, Json(row)))
 }
@@ -172,6 +181,7 @@ fn conflict(e: CommandError) -> ApiError {
     match e {
         CommandError::Conflict(m) => ApiError::Conflict(m),
         CommandError::Unprocessable(m) => ApiError::Unprocessable(m),
+        CommandError::Unavailable(m) => ApiError::Unavailable(m),
     }
 }
 

@@ -194,8 +194,9 @@ pub fn document() -> Value {
                 "requestBody": {"required": true, "content": {"application/json": {"schema": {"$ref": "#/components/schemas/BumpTestRequest"}}}},
                 "responses": write_errors(json!({
                     "202": json_response("The test, started.", json!({"$ref": "#/components/schemas/BumpTest"})),
-                    "409": error_response("The loop is in fallback, without permit, stopped, not started, or already testing."),
-                    "422": error_response("A level outside the input's bounds (naming the bound), or a step or settle_max_s out of range.")
+                    "409": error_response("The loop is in fallback, without permit, stopped, not started, reading its setpoints back, or already testing."),
+                    "422": error_response("A level outside the input's bounds (naming the bound), another input outside its bounds, or a step or settle_max_s out of range (settle_max_s at most 50,000 ticks)."),
+                    "503": error_response("The PLC's setpoints cannot be read, or no history store can keep the test.")
                 }))
             }},
             "/api/v1/bump-tests/{id}": {"get": {

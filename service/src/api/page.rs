@@ -54,6 +54,7 @@ th, td {{ border: 1px solid #ccc; padding: 0.3em 0.7em; text-align: right; }}
 th {{ background: #f2f2f2; }}
 td:first-child {{ text-align: left; }}
 .fallback, .no_permit {{ background: #fdd; }}
+.testing {{ background: #ffd; }}
 .seeking {{ background: #dfd; }}
 </style></head>
 <body>

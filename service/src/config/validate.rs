@@ -332,7 +332,7 @@ fn validate_input(config: &Config, l: &LoopConfig, input: &InputConfig, path: &s
         ("dither_period_s", input.dither_period_s),
         ("gain", input.gain),
     ] {
-        if value <= 0.0 {
+        if !(value > 0.0 && value.is_finite()) {
             p.at(&format!("{path}.{key}"), "must be greater than zero");
         }
     }

@@ -20,6 +20,8 @@ use crate::tune::Record;
 
 /// Ticks the first level (u0, the baseline) is held at least, to measure the noise.
 pub const BASELINE_TICKS: usize = 30;
+/// Most rows the settling fit looks at (the record is thinned evenly beyond this).
+const FIT_ROWS: usize = 2000;
 /// Fewest ticks a level is held.
 const MIN_HOLD_TICKS: usize = 10;
 /// A visible response moves the objective by more than this many noise deviations.
@@ -182,7 +184,21 @@ impl Staircase {
             return;
         }
         self.fitted_at = rows;
-        let needed = match crate::tune::fit::fit(&self.record) {
+        // At most a couple of thousand rows: this runs inside a tick, and the settling
+        // time needs the shape of the response, not every sample.
+        let every = rows.div_ceil(FIT_ROWS).max(1);
+        let thinned;
+        let record = if every == 1 {
+            &self.record
+        } else {
+            thinned = Record {
+                t_s: self.record.t_s.iter().step_by(every).copied().collect(),
+                u: self.record.u.iter().step_by(every).copied().collect(),
+                y: self.record.y.iter().step_by(every).copied().collect(),
+            };
+            &thinned
+        };
+        let needed = match crate::tune::fit::fit(record) {
             Ok(f) => Some(f.dead_time_s + 4.0 * f.lag_s),
             Err(crate::tune::FitError::TooShort { needed_s, .. }) => Some(needed_s),
             Err(_) => None,

@@ -384,7 +384,8 @@ impl Control {
                 match next {
                     Some((input, setpoint)) => {
                         self.applied = self.seeker.inputs().iter().map(|i| i.applied).collect();
-                        self.applied[input] = setpoint;
+                        // The levels were checked against the bounds; this holds them anyway.
+                        self.applied[input] = self.seeker.inputs()[input].guard.clamp(setpoint);
                         TickReport { write: true, guard, ..quiet }
                     }
                     None => {
@@ -502,6 +503,9 @@ impl Control {
         let conflict = |why: &str| Err(TestRefused::Conflict(why.to_owned()));
         match self.machine.state {
             _ if !self.started => return conflict("the loop has not started yet"),
+            _ if self.wants_read_back => {
+                return conflict("the loop is reading its setpoints back from the PLC; try again");
+            }
             State::Testing => return conflict("a bump test is already running on this loop"),
             State::Fallback => return conflict("the loop is in fallback: acknowledge the trip first"),
             State::NoPermit => return conflict("the PLC does not permit this loop to write"),
@@ -516,6 +520,21 @@ impl Control {
         };
         if starts.len() != self.seeker.inputs().len() || starts.iter().any(|s| !s.is_finite()) {
             return conflict("the setpoints in the PLC are not all known numbers");
+        }
+        // The other inputs hold where they stand: each must stand inside its bounds, or
+        // holding it would move it.
+        for (i, (state, &start)) in self.seeker.inputs().iter().zip(starts).enumerate() {
+            if i != input && !state.guard.bounds.contains(start) {
+                return Err(TestRefused::OutOfBounds(format!(
+                    "another input of the loop (number {}) stands at {}, outside its bounds {}: a test would move it",
+                    i + 1,
+                    crate::config::show(start),
+                    state.guard.bounds
+                )));
+            }
+        }
+        if !(self.max_rates[input] > 0.0 && self.max_rates[input].is_finite()) {
+            return conflict("the input has no usable rate limit");
         }
         let bounds = state.guard.bounds;
         for (name, level) in [("u0", u0), ("u0 + step", u0 + step), ("u0 - step", u0 - step)] {
@@ -905,6 +924,41 @@ mod tests {
         assert_eq!(c.state(), State::NoPermit, "a NaN permit withholds too");
         assert!(c.tick(8, 8.0, permit(Some(&[10.0]), Permit::Reads(1.0))).write);
         assert_eq!(c.state(), State::Fallback);
+    }
+
+    #[test]
+    fn a_test_on_an_observing_loop_ends_observing_whatever_the_permit_and_faults_do_next() {
+        let mut c = Control::new(&with_permit("observing"));
+        c.start(0.0, &[3.0]);
+        c.tick(0, 0.0, permit(Some(&[10.0]), Permit::Reads(1.0)));
+        c.start_test(0, 0.5, 100.0, &[3.0], 1).unwrap();
+        assert!(c.tick(1, 1.0, permit(Some(&[10.0]), Permit::Reads(1.0))).write);
+        assert_eq!(c.state(), State::Testing);
+        let r = c.tick(2, 2.0, permit(Some(&[10.0]), Permit::Reads(0.0)));
+        assert!(!r.write);
+        assert_eq!(c.state(), State::Observing, "back to the mode, not to no_permit");
+        let ended = c.take_finished_test().expect("the test ended");
+        assert!(matches!(ended.outcome, TestOutcome::Aborted(ref why) if why.contains("withdrew")));
+        // A fault and the permit's return must not make an observing loop write.
+        for n in 3..10 {
+            assert!(!c.tick(n, n as f64, permit(None, Permit::Unreadable)).write, "tick {n}");
+        }
+        assert!(!c.tick(10, 10.0, permit(Some(&[10.0]), Permit::Reads(1.0))).write);
+        assert_eq!(c.state(), State::Observing);
+    }
+
+    #[test]
+    fn a_test_refuses_levels_outside_the_bounds_and_a_loop_that_waits_for_its_setpoints() {
+        let mut c = Control::new(&config("seeking", ""));
+        c.start(0.0, &[3.0]);
+        c.tick(0, 0.0, good(&[10.0]));
+        match c.start_test(0, 2.5, 100.0, &[3.0], 1) {
+            Err(TestRefused::OutOfBounds(why)) => assert!(why.contains("upper bound 5"), "{why}"),
+            other => panic!("{other:?}"),
+        }
+        c.ask(Mode::Observing).unwrap();
+        c.ask(Mode::Seeking).unwrap();
+        assert!(matches!(c.start_test(0, 0.5, 100.0, &[3.0], 1), Err(TestRefused::Conflict(_))));
     }
 
     #[test]

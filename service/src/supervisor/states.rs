@@ -159,7 +159,11 @@ impl Machine {
             }
             // Without permission a loop writes nothing, but remembers a trip for later.
             (NoPermit, Event::Fault(trip)) if self.tripped.is_none() => (NoPermit, Effect::Latch(trip)),
-            (Seeking | Holding | Fallback | Testing, Event::PermitWithdrawn) => (NoPermit, Effect::None),
+            (Seeking | Holding | Fallback, Event::PermitWithdrawn) => (NoPermit, Effect::None),
+            // A test from a mode that does not write goes back to it: it must not learn to write.
+            (Testing, Event::PermitWithdrawn) => {
+                (if writing_mode { NoPermit } else { State::of(self.mode) }, Effect::None)
+            }
             (NoPermit, Event::PermitGranted) if self.tripped.is_some() => (Fallback, Effect::None),
             // A permit that cannot be read is a fault of the link, not the PLC saying no.
             (Seeking | Holding | NoPermit | Testing, Event::PermitLost) => match self.tripped {

@@ -27,6 +27,10 @@ pub enum CommandError {
     /// Well-formed but not possible with these values (an HTTP 422).
     #[error("{0}")]
     Unprocessable(String),
+    /// Something the command needs cannot be reached now: the PLC, the history store (an
+    /// HTTP 503).
+    #[error("{0}")]
+    Unavailable(String),
 }
 
 /// A change asked of a running loop through its [`LoopHandle`]; it takes effect at the
@@ -133,6 +137,8 @@ pub struct LoopTask {
     read_failing: bool,
     /// The bump test running, as stored, and when (Unix ms, loop clock s) it started.
     test: Option<(BumpTestRow, i64, f64)>,
+    /// The last save of a bump test, which the next one waits for.
+    test_saving: Option<tokio::task::JoinHandle<()>>,
 }
 
 impl LoopTask {
@@ -174,6 +180,7 @@ impl LoopTask {
             heartbeat_conflict: false,
             read_failing: false,
             test: None,
+            test_saving: None,
         };
         (task, LoopHandle { config: loop_config, status: receiver, commands: commands_in })
     }
@@ -258,7 +265,7 @@ impl LoopTask {
         actor: &str,
     ) -> Result<BumpTestRow, CommandError> {
         let Some(history) = self.resume.clone() else {
-            return Err(CommandError::Conflict("there is no history store to keep the test in".into()));
+            return Err(CommandError::Unavailable("there is no history store to keep the test in".into()));
         };
         let Some(cfg) = self.config.inputs.get(input) else {
             return Err(CommandError::Conflict(format!("loop {} has no input {input}", self.name)));
@@ -269,7 +276,7 @@ impl LoopTask {
             self.control.inputs().iter().map(|i| i.estimate).collect()
         } else {
             let back = self.read_back().await.map_err(|e| {
-                CommandError::Conflict(format!("cannot read the setpoints from the PLC: {e}"))
+                CommandError::Unavailable(format!("cannot read the setpoints from the PLC: {e}"))
             })?;
             back.into_iter().map(|v| v.unwrap_or(f64::NAN)).collect()
         };
@@ -306,7 +313,7 @@ impl LoopTask {
                 self.control.take_finished_test();
                 self.control.take_transitions();
                 self.write_estimates().await;
-                return Err(CommandError::Conflict(format!("cannot store the bump test in history: {e}")));
+                return Err(CommandError::Unavailable(format!("cannot store the bump test in history: {e}")));
             }
         }
         tracing::info!(r#loop = %self.name, input = %name, id = row.id, step, u0, actor = %actor, "bump test started");
@@ -343,14 +350,14 @@ impl LoopTask {
             .collect();
         let levels_changed = row.levels.as_array().is_none_or(|a| a.len() != levels.len());
         row.levels = serde_json::Value::Array(levels);
-        let Some(history) = self.resume.clone() else { return };
         let Some(FinishedTest { staircase, outcome }) = finished else {
-            if levels_changed && let Err(e) = history.save_bump_test(row).await {
-                tracing::warn!(r#loop = %self.name, id = row.id, error = %e, "cannot store the bump test's levels");
+            if levels_changed {
+                let row = row.clone();
+                self.save_test(async move { Some(row) });
             }
             return;
         };
-        let (mut row, ..) = self.test.take().expect("a running test");
+        let Some((mut row, ..)) = self.test.take() else { return };
         row.finished_at = Some(now_ms());
         let detail = serde_json::json!({"id": row.id, "input": row.input, "levels": row.levels});
         match outcome {
@@ -361,9 +368,7 @@ impl LoopTask {
                 detail["reason"] = serde_json::json!(reason);
                 row.abort_reason = Some(reason);
                 self.reporting.event(Some(&self.name), "bump_test_aborted", detail, "system");
-                if let Err(e) = history.save_bump_test(&row).await {
-                    tracing::warn!(r#loop = %self.name, id = row.id, error = %e, "cannot store the aborted bump test");
-                }
+                self.save_test(async move { Some(row) });
             }
             TestOutcome::Done => {
                 tracing::info!(r#loop = %self.name, id = row.id, "bump test done; fitting the plant");
@@ -377,10 +382,12 @@ impl LoopTask {
                     configured_rate_per_s: Some(cfg.max_rate_per_s),
                     ..Default::default()
                 };
-                let name = self.name.clone();
-                // The fit and its proof take a CPU for a moment: off the loop's task. The
-                // test shows `running` until its result is stored.
-                tokio::spawn(async move {
+                // The levels and the end are kept at once; the fit and its proof take a CPU
+                // for a moment, off the loop's task. The test shows `running` until its
+                // result is stored.
+                let ended = row.clone();
+                self.save_test(async move { Some(ended) });
+                self.save_test(async move {
                     let record = staircase.record().clone();
                     let fitted =
                         tokio::task::spawn_blocking(move || crate::tune::tune(&record, &request)).await;
@@ -390,12 +397,27 @@ impl LoopTask {
                         Err(e) => row.fit_error = Some(format!("the fit failed: {e}")),
                     }
                     row.status = "done".into();
-                    if let Err(e) = history.save_bump_test(&row).await {
-                        tracing::warn!(r#loop = %name, id = row.id, error = %e, "cannot store the bump test's result");
-                    }
+                    Some(row)
                 });
             }
         }
+    }
+
+    /// Stores the bump test `row` makes, off the loop's task (a busy database must not
+    /// hold up a tick) and after every earlier save of it, so saves land in order.
+    fn save_test(&mut self, row: impl Future<Output = Option<BumpTestRow>> + Send + 'static) {
+        let Some(history) = self.resume.clone() else { return };
+        let earlier = self.test_saving.take();
+        let name = self.name.clone();
+        self.test_saving = Some(tokio::spawn(async move {
+            if let Some(earlier) = earlier {
+                let _ = earlier.await;
+            }
+            let Some(row) = row.await else { return };
+            if let Err(e) = history.save_bump_test(&row).await {
+                tracing::warn!(r#loop = %name, id = row.id, error = %e, "cannot store the bump test");
+            }
+        }));
     }
 
     /// Checks that the heartbeat register still holds the value this loop wrote last. If
@@ -674,6 +696,12 @@ impl LoopTask {
                 self.publish();
                 let _ = reply.send(started);
             }
+            Command::SetBounds { reply, .. } if self.control.state() == State::Testing => {
+                let _ = reply.send(Err(CommandError::Conflict(format!(
+                    "loop {} is running a bump test: change its bounds once the test has ended (or cancel it with a mode)",
+                    self.name
+                ))));
+            }
             Command::SetBounds { input, bounds, actor, reply } => {
                 let Some(before) = self.control.inputs().get(input).map(|i| i.guard.bounds) else {
                     let _ = reply.send(Err(CommandError::Conflict(format!(
@@ -731,13 +759,17 @@ impl LoopTask {
             }
             None => serde_json::Value::Null,
         };
-        if let (Some((mut row, ..)), Some(history)) = (self.test.take(), &self.resume) {
+        if let Some((mut row, ..)) = self.test.take() {
             row.status = "aborted".into();
             row.finished_at = Some(now_ms());
             row.abort_reason = Some("the service stopped".into());
-            if let Err(e) = history.save_bump_test(&row).await {
-                tracing::warn!(r#loop = %self.name, id = row.id, error = %e, "cannot store the aborted bump test");
-            }
+            self.save_test(async move { Some(row) });
+        }
+        // Bump-test saves and a fit in progress get a few seconds to land.
+        if let Some(saving) = self.test_saving.take()
+            && tokio::time::timeout(Duration::from_secs(10), saving).await.is_err()
+        {
+            tracing::warn!(r#loop = %self.name, "a bump test's result was not stored before the stop");
         }
         self.reporting.event(
             Some(&self.name),

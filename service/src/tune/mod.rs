@@ -135,7 +135,9 @@ pub fn tune(record: &Record, request: &Request) -> Result<TuneResult, TuneError>
              (u0, u0 + step, u0 - step)"
         )));
     };
-    if second.abs() < 2.0 * curvature_std {
+    // Written so that a NaN curvature is not significant either.
+    let significant = second.abs() > 2.0 * curvature_std;
+    if !significant {
         let step = fit.levels.windows(2).map(|w| (w[1].setpoint - w[0].setpoint).abs()).fold(0.0, f64::max);
         return Err(TuneError::Unjustified(format!(
             "the objective's curvature ({} +- {}) cannot be told from zero in this record: repeat the test with a \

@@ -46,6 +46,16 @@ fn plus(x: f64) -> String {
     if x < 0.0 { format!("- {}", num(-x)) } else { format!("+ {}", num(x)) }
 }
 
+/// The input's name in the generated files: its own when it is a plain name, else a
+/// stand-in (the files are read by the expression and TOML parsers).
+fn input_name(name: &str) -> &str {
+    let plain = name.chars().next().is_some_and(|c| c.is_ascii_alphabetic() || c == '_')
+        && name.chars().all(|c| c.is_ascii_alphanumeric() || c == '_')
+        && name != PROCESS
+        && name != OBJECTIVE;
+    if plain { name } else { "tested_input" }
+}
+
 impl Case<'_> {
     /// Where the proving run starts: the bound farther from the optimum, so the run
     /// shows the whole approach.
@@ -78,7 +88,7 @@ impl Case<'_> {
              [[outputs]]\nname = \"{OBJECTIVE}\"\ninput_register = 2\n\
              expression = \"0 {c1} * ({PROCESS} - {u0}) {c2} * ({PROCESS} - {u0})^2\"\nnoise_std = {noise}\n",
             step = num(tick / STEPS_PER_TICK),
-            input = self.input,
+            input = input_name(self.input),
             start = num(self.start()),
             lag = num(m.lag_s),
             dead = num(m.dead_time_s),
@@ -109,7 +119,7 @@ impl Case<'_> {
             hp = num(r.highpass_hz.value),
             phase = num(r.phase_deg.value),
             stale = num(10.0 * r.tick_s),
-            input = self.input,
+            input = input_name(self.input),
             min = num(b.min),
             max = num(b.max),
             start = num(self.start()),
