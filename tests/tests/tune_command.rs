@@ -410,3 +410,82 @@ fn check_warns_when_the_phase_or_the_period_does_not_fit_the_plant() {
         check.stderr
     );
 }
+
+/// docs/commissioning.md's walk-through: the demo's untuned dryer loop with the tuning a
+/// bump test gave (pasted as the docs show it), rehearsed against the demo's own plant.
+#[test]
+fn the_demo_dryer_tuned_as_the_commissioning_docs_show_converges_as_check_predicts() {
+    let demo = std::fs::read_to_string(crate::check_command::root().join("config/demo.toml")).unwrap();
+    let docs = std::fs::read_to_string(crate::check_command::root().join("docs/commissioning.md")).unwrap();
+    let (_, snippet) =
+        docs.rsplit_once("# paste into the loop (tick_s = 2):\n").expect("the measured snippet in the docs");
+    let value = |key: &str| -> String {
+        let line = snippet.lines().find(|l| l.starts_with(&format!("{key} = "))).expect(key);
+        line.split(" = ").nth(1).unwrap().to_owned()
+    };
+    let start = demo.find("name = \"dryer-3-inlet\"").expect("the dryer loop");
+    let (head, mut dryer) = (demo[..start].to_owned(), demo[start..].to_owned());
+    let replace = |text: &mut String, from: &str, to: &str| {
+        assert!(text.contains(from), "the demo's dryer loop has no `{from}`");
+        *text = text.replacen(from, to, 1);
+    };
+    replace(&mut dryer, "start_mode = \"observing\"", "start_mode = \"seeking\"");
+    replace(
+        &mut dryer,
+        "[loops.filter]\nhighpass_hz = 0.002\n",
+        &format!(
+            "[loops.model]\nlag_s = {}\ndead_time_s = {}\ncurvature = {}\nnoise_std = {}\n[loops.filter]\nhighpass_hz = {}\nphase_deg = {}\n",
+            value("lag_s"),
+            value("dead_time_s"),
+            value("curvature"),
+            value("noise_std"),
+            value("highpass_hz"),
+            value("phase_deg")
+        ),
+    );
+    for key in ["max_rate_per_s", "dither_amplitude", "dither_period_s", "gain"] {
+        let line = dryer.lines().find(|l| l.starts_with(&format!("{key} = "))).unwrap().to_owned();
+        replace(&mut dryer, &line, &format!("{key} = {}", value(key)));
+    }
+    let dir = tempfile::tempdir().unwrap();
+    let config = write_file(dir.path(), "tuned.toml", &(head + &dryer));
+    let check = ridgeline(&["check", "--config", config.to_str().unwrap()]);
+    assert_eq!(check.code, Some(0), "{}", check.stderr);
+    let dryer_summary = check.stdout.split("loop dryer-3-inlet").nth(1).unwrap();
+    let predicted: f64 = dryer_summary
+        .split("predicted time constant ")
+        .nth(1)
+        .and_then(|rest| rest.split(" s").next())
+        .and_then(|n| n.parse().ok())
+        .unwrap_or_else(|| panic!("no prediction in:\n{}", check.stdout));
+    let csv = dir.path().join("csv");
+    let plant = crate::check_command::root().join("config/demo-plant.toml");
+    let run = ridgeline(&[
+        "rehearse",
+        "--config",
+        config.to_str().unwrap(),
+        "--plant",
+        plant.to_str().unwrap(),
+        "--duration",
+        "8h",
+        "--csv",
+        csv.to_str().unwrap(),
+    ]);
+    assert_eq!(run.code, Some(0), "{}", run.stderr);
+    let text = std::fs::read_to_string(csv.join("dryer-3-inlet.csv")).unwrap();
+    let mut lines = text.lines();
+    let header: Vec<&str> = lines.next().unwrap().split(',').collect();
+    let column = |name: &str| header.iter().position(|h| *h == name).expect(name);
+    let (estimate, optimum) = (column("dryer_inlet_degc.estimate"), column("dryer_inlet_degc.optimum"));
+    let error: Vec<f64> = lines
+        .map(|l| {
+            let cells: Vec<f64> = l.split(',').map(|c| c.parse().unwrap_or(f64::NAN)).collect();
+            cells[estimate] - cells[optimum]
+        })
+        .collect();
+    // Half a dither period (58 ticks) per window: the demodulation's ripple averages out.
+    let measured = 2.0 * crate::drive::decay_time_constant(&error, 29, 0.6, 0.05);
+    // Source: the averaged rate with plant dynamics (CHECKS.md, after Tan, Nesic & Mareels
+    // 2006), with the fitted model, against the demo's true plant.
+    assert!((measured / predicted - 1.0).abs() < 0.1, "predicted {predicted} s, measured {measured} s");
+}
