@@ -119,8 +119,9 @@ pub struct LoopTask {
     status: watch::Sender<LoopStatus>,
     commands: mpsc::Receiver<Command>,
     reporting: Reporting,
-    /// Where the last estimates are kept, to resume from after a restart.
-    resume: Option<History>,
+    /// The history store: the last estimates to resume from after a restart, and the
+    /// loop's bump tests.
+    history: Option<History>,
     /// The origin of the loop's own clock, for the watchdog.
     started_at: Instant,
     objective_at: Option<i64>,
@@ -143,13 +144,14 @@ pub struct LoopTask {
 
 impl LoopTask {
     /// The task for loop `index` of a validated config, and the API's handle on it.
-    /// `resume` is the history to take the last stored estimates from at start.
+    /// `history` is where the last stored estimates are taken from at start, and where
+    /// bump tests are kept.
     pub fn new(
         config: &Config,
         index: usize,
         links: &Links,
         reporting: Reporting,
-        resume: Option<History>,
+        history: Option<History>,
     ) -> (Self, LoopHandle) {
         let loop_config = Arc::new(config.loops[index].clone());
         let control = Control::new(&loop_config);
@@ -170,7 +172,7 @@ impl LoopTask {
             status,
             commands,
             reporting,
-            resume,
+            history,
             started_at: Instant::now(),
             objective_at: None,
             last_tick: None,
@@ -264,7 +266,7 @@ impl LoopTask {
         settle_max_s: f64,
         actor: &str,
     ) -> Result<BumpTestRow, CommandError> {
-        let Some(history) = self.resume.clone() else {
+        let Some(history) = self.history.clone() else {
             return Err(CommandError::Unavailable("there is no history store to keep the test in".into()));
         };
         let Some(cfg) = self.config.inputs.get(input) else {
@@ -406,7 +408,7 @@ impl LoopTask {
     /// Stores the bump test `row` makes, off the loop's task (a busy database must not
     /// hold up a tick) and after every earlier save of it, so saves land in order.
     fn save_test(&mut self, row: impl Future<Output = Option<BumpTestRow>> + Send + 'static) {
-        let Some(history) = self.resume.clone() else { return };
+        let Some(history) = self.history.clone() else { return };
         let earlier = self.test_saving.take();
         let name = self.name.clone();
         self.test_saving = Some(tokio::spawn(async move {
@@ -474,7 +476,7 @@ impl LoopTask {
                 return;
             }
         };
-        let stored = match &self.resume {
+        let stored = match &self.history {
             Some(history) => match history.last_estimates(&self.name).await {
                 Ok(rows) => rows,
                 Err(e) => {
