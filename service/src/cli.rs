@@ -91,6 +91,10 @@ pub enum Command {
         /// Print the report as JSON.
         #[arg(long)]
         json: bool,
+        /// Each loop against its own copy of the plant, compared side by side at the end
+        /// (loops may then write the same registers: one per tuning or method, say).
+        #[arg(long)]
+        separately: bool,
     },
     /// Fit the plant from a record of steps, recommend a tuning and prove it by rehearsal.
     Tune {
@@ -139,12 +143,13 @@ pub fn run(cli: Cli) -> ExitCode {
         Command::Run { config } => serve(&config),
         Command::Sim { plant, listen, speed } => simulate(&plant, listen, speed),
         Command::Check { config } => check(&config),
-        Command::Rehearse { config, plant, duration, plot, csv, json } => rehearse(
+        Command::Rehearse { config, plant, duration, plot, csv, json, separately } => rehearse(
             &config,
             &plant,
             Options { duration_s: duration, csv_dir: csv, keep_traces: plot.is_some() },
             plot.as_deref(),
             json,
+            separately,
         ),
         Command::Tune {
             samples,
@@ -197,8 +202,9 @@ fn rehearse(
     options: Options,
     plot: Option<&Path>,
     json: bool,
+    separately: bool,
 ) -> ExitCode {
-    let config = config::load(config_path);
+    let config = if separately { config::load_loops_apart(config_path) } else { config::load(config_path) };
     let plant = sim::load(plant_path);
     let (config, plant) = match (config, plant) {
         (Ok(c), Ok(p)) => (c, p),
@@ -209,22 +215,46 @@ fn rehearse(
             return ExitCode::from(INVALID);
         }
     };
-    let rehearsal = match Rehearsal::new(&config, &plant, &config_path.display().to_string()) {
-        Ok(r) => r,
-        Err(problems) => {
-            eprintln!("the config does not fit the plant model {}:", plant_path.display());
-            return report_problems(&problems);
-        }
+    // One rehearsal of every loop together, or one per loop, each with its own plant.
+    let configs: Vec<config::Config> = if separately {
+        config.loops.iter().map(|l| config::Config { loops: vec![l.clone()], ..config.clone() }).collect()
+    } else {
+        vec![config]
     };
-    let mut progress = Progress::new();
-    let outcome = rehearsal.run(&options, &mut |done| progress.update(done));
-    progress.finish();
-    let outcome = match outcome {
-        Ok(o) => o,
-        Err(e) => {
-            eprintln!("rehearsal failed: {e:#}");
-            return ExitCode::from(FAILED);
+    let mut rehearsals = Vec::new();
+    for c in &configs {
+        match Rehearsal::new(c, &plant, &config_path.display().to_string()) {
+            Ok(r) => rehearsals.push(r),
+            Err(problems) => {
+                eprintln!("the config does not fit the plant model {}:", plant_path.display());
+                return report_problems(&problems);
+            }
         }
+    }
+    let mut progress = Progress::new();
+    let runs = rehearsals.len() as f64;
+    let mut outcomes = Vec::new();
+    for (i, rehearsal) in rehearsals.into_iter().enumerate() {
+        match rehearsal.run(&options, &mut |done| progress.update((i as f64 + done) / runs)) {
+            Ok(o) => outcomes.push(o),
+            Err(e) => {
+                progress.finish();
+                eprintln!("rehearsal failed: {e:#}");
+                return ExitCode::from(FAILED);
+            }
+        }
+    }
+    progress.finish();
+    let outcome = if separately {
+        let mut loops = Vec::new();
+        let mut traces = Vec::new();
+        for o in outcomes {
+            loops.extend(o.report.loops);
+            traces.extend(o.traces);
+        }
+        rehearse::Outcome { report: rehearse::Report::side_by_side(options.duration_s, loops), traces }
+    } else {
+        outcomes.remove(0)
     };
     if json {
         match serde_json::to_string_pretty(&outcome.report) {

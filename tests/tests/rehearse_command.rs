@@ -201,3 +201,50 @@ fn a_tick_that_is_not_a_whole_number_of_plant_steps_is_refused() {
         run.stderr
     );
 }
+
+#[test]
+fn separately_each_loop_gets_its_own_plant_and_the_report_compares_them() {
+    let dir = tempfile::tempdir().unwrap();
+    // Two tunings of the same loop, writing the same register: only a rehearsal with a
+    // plant per loop can run them, and `check` refuses the file for a live service.
+    let base = config(&[]);
+    let first = &base[base.find("[[loops]]").expect("a loop")..];
+    let faster = first
+        .replace("name = \"test-loop\"", "name = \"test-loop-fast\"")
+        .replace("gain = 0.00125", "gain = 0.005");
+    let cfg = write_file(dir.path(), "two.toml", &format!("{base}\n{faster}"));
+    let plant = write_file(dir.path(), "classic-plant.toml", CLASSIC_PLANT);
+    let checked = ridgeline(&["check", "--config", cfg.to_str().unwrap()]);
+    assert_eq!(checked.code, Some(2), "{}", checked.stdout);
+    assert!(checked.stderr.contains("already written by"), "{}", checked.stderr);
+
+    let args = ["--duration", "6000s", "--separately"];
+    let report =
+        json(&rehearse(cfg.to_str().unwrap(), plant.to_str().unwrap(), &[&args[..], &["--json"]].concat()));
+    let rows = report["comparison"].as_array().expect("a comparison");
+    assert_eq!(rows.len(), 2);
+    assert_eq!(
+        (rows[0]["loop"].as_str(), rows[1]["loop"].as_str()),
+        (Some("test-loop"), Some("test-loop-fast"))
+    );
+    assert!(rows.iter().all(|r| r["method"] == "sine"), "{rows:?}");
+    let settle = |r: &serde_json::Value| r["settle_time_s"].as_f64().expect("settles");
+    // Each against its own plant: four times the gain, about four times as fast.
+    assert!(settle(&rows[1]) < 0.5 * settle(&rows[0]), "{rows:?}");
+    // The first loop alone is the classic case: the same result as rehearsed on its own.
+    let alone = json(&rehearse(
+        write_file(dir.path(), "one.toml", &base).to_str().unwrap(),
+        plant.to_str().unwrap(),
+        &["--duration", "6000s", "--json"],
+    ));
+    assert_eq!(report["loops"][0]["final"], alone["loops"][0]["final"]);
+    assert!(alone.get("comparison").is_none());
+
+    let text = rehearse(cfg.to_str().unwrap(), plant.to_str().unwrap(), &args);
+    assert_eq!(text.code, Some(0), "{}", text.stderr);
+    assert!(
+        text.stdout.contains("side by side") && text.stdout.contains("test-loop-fast  sine"),
+        "{}",
+        text.stdout
+    );
+}

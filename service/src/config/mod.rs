@@ -302,6 +302,19 @@ pub fn load(path: &Path) -> Result<Config, FileProblems> {
     parse(&text, &file)
 }
 
+/// Reads and validates a config file whose loops each get a plant of their own (`rehearse
+/// --separately`): loops may write the same registers.
+pub fn load_loops_apart(path: &Path) -> Result<Config, FileProblems> {
+    let (text, file) = read::read_file(path)?;
+    read::document(
+        &text,
+        &file,
+        &["service", "access", "links", "tags", "loops"],
+        read_config,
+        validate::validate_loops_apart,
+    )
+}
+
 /// Parses and validates config text; `file` names it in problems.
 pub fn parse(text: &str, file: &str) -> Result<Config, FileProblems> {
     read::document(

@@ -8,6 +8,16 @@ use super::show;
 use super::{Codec, Config, InputConfig, LinkKind, LoopConfig, MethodKind, Recover, RegisterType, TagSource};
 
 pub(super) fn validate(config: &Config, p: &Problems) {
+    validate_with(config, p, true);
+}
+
+/// As [`validate`], for loops that each get a plant of their own (`rehearse
+/// --separately`): loops may write the same registers, inputs of one loop still may not.
+pub(super) fn validate_loops_apart(config: &Config, p: &Problems) {
+    validate_with(config, p, false);
+}
+
+fn validate_with(config: &Config, p: &Problems, loops_share_a_plant: bool) {
     if config.service.retention_days == 0 {
         p.at("service.retention_days", "must be at least 1 day");
     }
@@ -33,7 +43,7 @@ pub(super) fn validate(config: &Config, p: &Problems) {
         }
         validate_loop(config, l, &path, p);
     }
-    check_write_collisions(config, p);
+    check_write_collisions(config, p, loops_share_a_plant);
 }
 
 /// Shortest tick: each tick is a network round trip to the PLC.
@@ -465,10 +475,14 @@ fn check_dither_frequencies(l: &LoopConfig, path: &str, p: &Problems) {
     }
 }
 
-/// Two inputs writing overlapping registers on one link would fight each other.
-fn check_write_collisions(config: &Config, p: &Problems) {
+/// Two inputs writing overlapping registers on one link would fight each other (across
+/// loops too, unless each loop has a plant of its own).
+fn check_write_collisions(config: &Config, p: &Problems, across_loops: bool) {
     let mut owners: HashMap<(&str, u32), String> = HashMap::new();
     for (li, l) in config.loops.iter().enumerate() {
+        if !across_loops {
+            owners.clear();
+        }
         let mut claims: Vec<(String, &str, u16, u16)> = l
             .inputs
             .iter()

@@ -186,7 +186,7 @@ impl Rehearsal {
             traces.extend(l.trace.take().map(TraceRecorder::finish));
             loops.push(l.report());
         }
-        Ok(Outcome { report: Report { duration_s: duration, loops }, traces })
+        Ok(Outcome { report: Report { duration_s: duration, loops, comparison: None }, traces })
     }
 }
 
@@ -268,6 +268,7 @@ impl LoopRun {
         LoopReport {
             name: self.config.name.clone(),
             direction: self.config.direction.as_str(),
+            method: self.config.method.as_str(),
             ticks: s.ticks,
             settle_time_s: s.settled_since,
             mean_loss,

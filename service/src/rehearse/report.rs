@@ -10,12 +10,47 @@ use serde::ser::SerializeMap;
 pub struct Report {
     pub duration_s: f64,
     pub loops: Vec<LoopReport>,
+    /// With `--separately`: one row per loop, side by side.
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub comparison: Option<Vec<ComparisonRow>>,
+}
+
+/// One loop of a side-by-side rehearsal (each loop against its own copy of the plant).
+#[derive(Debug, Clone, Serialize)]
+pub struct ComparisonRow {
+    #[serde(rename = "loop")]
+    pub loop_name: String,
+    pub method: &'static str,
+    pub settle_time_s: Option<f64>,
+    pub mean_loss: Option<f64>,
+    pub bound_hits: u64,
+    pub rate_limited_ticks: u64,
+}
+
+impl Report {
+    /// The reports of loops rehearsed each against its own copy of the plant, with the
+    /// comparison that ends them.
+    pub fn side_by_side(duration_s: f64, loops: Vec<LoopReport>) -> Report {
+        let comparison = loops
+            .iter()
+            .map(|l| ComparisonRow {
+                loop_name: l.name.clone(),
+                method: l.method,
+                settle_time_s: l.settle_time_s,
+                mean_loss: l.mean_loss,
+                bound_hits: l.bound_hits,
+                rate_limited_ticks: l.rate_limited_ticks,
+            })
+            .collect();
+        Report { duration_s, loops, comparison: Some(comparison) }
+    }
 }
 
 #[derive(Debug, Clone, Serialize)]
 pub struct LoopReport {
     pub name: String,
     pub direction: &'static str,
+    pub method: &'static str,
     pub ticks: u64,
     /// First time after which every estimate stayed within 2% of its bounds span of the
     /// moving optimum (or of the nearest point the dither lets the estimate reach, when
@@ -80,6 +115,27 @@ impl fmt::Display for Report {
             }
             write!(f, "{l}")?;
         }
+        if let Some(rows) = &self.comparison {
+            writeln!(f, "\nside by side, each loop against its own copy of the plant:")?;
+            let width = rows.iter().map(|r| r.loop_name.len()).max().unwrap_or(4).max(4);
+            writeln!(
+                f,
+                "  {:<width$}  {:<8}  {:>14}  {:>12}  {:>10}  {:>12}",
+                "loop", "method", "settle time", "mean loss", "bound hits", "rate-limited"
+            )?;
+            for r in rows {
+                writeln!(
+                    f,
+                    "  {:<width$}  {:<8}  {:>14}  {:>12}  {:>10}  {:>12}",
+                    r.loop_name,
+                    r.method,
+                    r.settle_time_s.map_or_else(|| "never".to_owned(), human_duration),
+                    r.mean_loss.map_or_else(|| "n/a".to_owned(), |l| format!("{l:.6}")),
+                    r.bound_hits,
+                    r.rate_limited_ticks
+                )?;
+            }
+        }
         Ok(())
     }
 }
@@ -143,6 +199,7 @@ mod tests {
             loops: vec![LoopReport {
                 name: "a".into(),
                 direction: "maximize",
+                method: "sine",
                 ticks: 60,
                 settle_time_s: None,
                 mean_loss: Some(0.5),
@@ -153,6 +210,7 @@ mod tests {
                 events: vec![],
                 inputs: vec![FinalInput { name: "u".into(), estimate: 1.0, optimum: 2.0 }],
             }],
+            comparison: None,
         };
         let v = serde_json::to_value(&report).unwrap();
         let l = &v["loops"][0];
