@@ -80,16 +80,20 @@ fn every_write_route_needs_an_operator_token() {
     let status = call(&r.rig, "GET", "/api/v1/loops/bowl", None, None).json();
     assert_eq!(status["mode"], "holding");
     assert_eq!(status["inputs"][0]["bounds"], serde_json::json!({"min": 0.5, "max": 5.5}));
-    // One event for each accepted change, none for the six refused requests.
-    std::thread::sleep(Duration::from_millis(500));
-    let changes: Vec<serde_json::Value> = r
-        .rig
-        .events()
-        .into_iter()
-        .filter(|e| e["kind"] == "mode_changed" || e["kind"] == "bounds_changed")
-        .map(|e| e["actor"].clone())
-        .collect();
-    assert_eq!(changes, ["shift-script", "shift-script"]);
+    // One event for each accepted change, none for the six refused requests. History keeps
+    // events in the order they happened, and every refused request came before the
+    // accepted change of its route: once both accepted changes are in, a refused one's
+    // event would be too.
+    let changes = || -> Vec<serde_json::Value> {
+        r.rig
+            .events()
+            .into_iter()
+            .filter(|e| e["kind"] == "mode_changed" || e["kind"] == "bounds_changed")
+            .map(|e| e["actor"].clone())
+            .collect()
+    };
+    wait_until("both accepted changes are in history", Duration::from_secs(10), || changes().len() >= 2);
+    assert_eq!(changes(), ["shift-script", "shift-script"]);
 }
 
 #[test]
@@ -177,12 +181,20 @@ fn refused_changes_leave_the_loop_and_the_history_unchanged() {
         assert!(error["error"]["code"].is_string(), "{body}: {error}");
         assert!(error["error"]["message"].as_str().unwrap().contains(message), "{body}: {error}");
     }
-    // History is written a moment after a change; give a wrong event the time to show.
-    std::thread::sleep(Duration::from_millis(500));
     let after = call(&r.rig, "GET", "/api/v1/loops/bowl", None, None).json();
     assert_eq!(after["mode"], before["mode"]);
     assert_eq!(after["inputs"][0]["bounds"], before["inputs"][0]["bounds"]);
-    assert_eq!(r.rig.events().len(), events_before, "no event for a refused change");
+    // History is written a moment after a change. A marker change (the same bounds again)
+    // goes in after every refused request: once it is in history, an event of a refused
+    // request would be there before it.
+    let marker =
+        call(&r.rig, "PUT", bounds, Some(OPERATOR), Some(&before["inputs"][0]["bounds"].to_string()));
+    assert_eq!(marker.status, 200, "{}", marker.body);
+    wait_until("the marker change is in history", Duration::from_secs(10), || {
+        r.rig.events().len() > events_before
+    });
+    let events = r.rig.events();
+    assert_eq!(events.len(), events_before + 1, "no event for a refused change: {events:#?}");
 }
 
 #[test]

@@ -54,7 +54,10 @@ fn sigterm_writes_the_shutdown_value_and_exits_0() {
 fn an_unreachable_plc_at_start_is_one_log_line_and_the_service_keeps_retrying() {
     let rig = Rig::new("");
     let mut service = rig.service();
-    std::thread::sleep(Duration::from_secs(2));
+    // Many retries: 30 ticks of 50 ms against the dead link.
+    wait_until("the loop has ticked 30 times", Duration::from_secs(20), || {
+        rig.status().and_then(|s| s["ticks"].as_u64()).is_some_and(|t| t >= 30)
+    });
     assert!(service.is_running(), "the service keeps running");
     let log = service.stderr();
     let down: Vec<&str> = log.lines().filter(|l| l.contains("link down")).collect();
@@ -70,10 +73,12 @@ fn an_unreachable_plc_at_start_is_one_log_line_and_the_service_keeps_retrying() 
 fn a_restarted_modbus_server_is_reconnected_without_restarting_ridgeline() {
     let rig = Rig::new("");
     let mut sim = rig.sim();
-    let _service = rig.service();
+    let service = rig.service();
     rig.wait_writing();
     sim.stop();
-    std::thread::sleep(Duration::from_millis(800));
+    wait_until("the service sees the link down", Duration::from_secs(10), || {
+        service.stderr().contains("link down")
+    });
     // The new server starts at the plant's initial value, 2.0; a change means the
     // service reconnected and wrote.
     let _sim = rig.sim();
