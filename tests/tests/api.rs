@@ -368,8 +368,9 @@ fn metrics_parse_with_prometheus_client_and_name_every_series() {
     }
     assert!(!text.contains("/api/v1/loops/bowl\""), "a raw path became a label");
     assert!(!text.contains("/no/such/route"), "a scanner's path became a label");
-    // Common practice: `promtool check metrics` where Debian's prometheus package is installed (.ci/run installs it).
-    if let Ok(promtool) = which_promtool() {
+    // Common practice: `promtool check metrics` (Debian's prometheus package; tests/run installs it).
+    {
+        let promtool = promtool();
         let out = std::process::Command::new(promtool)
             .args(["check", "metrics"])
             .stdin(std::fs::File::open(&path).unwrap())
@@ -381,20 +382,22 @@ fn metrics_parse_with_prometheus_client_and_name_every_series() {
             String::from_utf8_lossy(&out.stdout),
             String::from_utf8_lossy(&out.stderr)
         );
-    } else {
-        eprintln!(
-            "promtool is not installed (Debian package `prometheus`); the prometheus_client check above still ran"
-        );
     }
 }
 
-fn which_promtool() -> Result<std::path::PathBuf, ()> {
+/// Prometheus' checker. Fails the test (never skips it) when it is not installed.
+fn promtool() -> std::path::PathBuf {
     std::env::var_os("PATH")
         .into_iter()
         .flat_map(|p| std::env::split_paths(&p).collect::<Vec<_>>())
         .map(|d| d.join("promtool"))
         .find(|p| p.exists())
-        .ok_or(())
+        .unwrap_or_else(|| {
+            panic!(
+                "promtool is not installed: it is in Debian's package `prometheus`. tests/run installs it when it \
+                 runs as root with apt-get; elsewhere install it (apt-get install prometheus) and run again"
+            )
+        })
 }
 
 #[test]
@@ -469,10 +472,7 @@ fn ridgeline_token_prints_a_fresh_token_and_the_entry_with_its_sha256() {
 
 #[test]
 fn the_shipped_scrape_config_and_alert_rules_pass_promtool() {
-    let Ok(promtool) = which_promtool() else {
-        eprintln!("promtool is not installed (Debian package `prometheus`); .ci/run installs it");
-        return;
-    };
+    let promtool = promtool();
     let deploy = crate::check_command::root().join("deploy");
     for args in [["check", "config", "prometheus.yml"], ["check", "rules", "alerts.yml"]] {
         // Source: Prometheus' own checker (Debian package prometheus).
