@@ -24,14 +24,12 @@ stdin closes or on SIGTERM/SIGINT.
 
 import asyncio
 import json
-import signal
 import struct
 import sys
-import threading
 
+from peer_server import emit, serve
 from pymodbus.constants import ExcCodes
-from pymodbus.server import ModbusTcpServer
-from pymodbus.simulator import DataType, SimData, SimDevice
+from pymodbus.simulator import DataType, SimData
 
 FORMATS = {"u16": "H", "i16": "h", "u32": "I", "i32": "i", "f32": "f"}
 READS = {3: "holding", 4: "input"}
@@ -52,10 +50,6 @@ def decode(entry, words):
     data = b"".join(w.to_bytes(2, "big") for w in words)
     (raw,) = struct.unpack(">" + FORMATS[entry["kind"]], data)
     return raw * entry["scale"] + entry["offset"]
-
-
-def emit(record):
-    print(json.dumps(record), flush=True)
 
 
 def covering(entries, table, address, count):
@@ -122,39 +116,18 @@ async def main():
         )
         return None
 
-    # Coils and discrete inputs are unused, but pymodbus needs one block of each when the
-    # four tables are separate (as in most PLCs: input and holding registers apart).
-    bits = [SimData(0, values=[False] * 16, datatype=DataType.BITS)]
-    device = SimDevice(
-        id=layout.get("unit", 1),
-        simdata=(bits, list(bits), block("holding"), block("input")),
-        action=action,
-    )
-    server = ModbusTcpServer(device, address=("127.0.0.1", 0))
-    await server.serve_forever(background=True)
-    port = server.transport.sockets[0].getsockname()[1]
+    def ready(port):
+        emit(
+            {
+                "ready": True,
+                "port": port,
+                "values": [
+                    {k: e[k] for k in ("table", "address", "words", "engineering", "engineering_bits")} for e in entries
+                ],
+            }
+        )
 
-    done = asyncio.Event()
-    loop = asyncio.get_running_loop()
-    for sig in (signal.SIGTERM, signal.SIGINT):
-        loop.add_signal_handler(sig, done.set)
-
-    def wait_for_stdin_eof():
-        sys.stdin.read()
-        loop.call_soon_threadsafe(done.set)
-
-    threading.Thread(target=wait_for_stdin_eof, daemon=True).start()
-    emit(
-        {
-            "ready": True,
-            "port": port,
-            "values": [
-                {k: e[k] for k in ("table", "address", "words", "engineering", "engineering_bits")} for e in entries
-            ],
-        }
-    )
-    await done.wait()
-    await server.shutdown()
+    await serve(layout.get("unit", 1), block("holding"), block("input"), action, ready)
 
 
 if __name__ == "__main__":

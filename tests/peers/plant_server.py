@@ -49,16 +49,14 @@ holding registers print nothing. Exits when stdin closes or on SIGTERM/SIGINT.
 import asyncio
 import json
 import math
-import signal
 import struct
 import sys
-import threading
 import time
 
 import numpy
+from peer_server import emit, serve
 from pymodbus.constants import ExcCodes
-from pymodbus.server import ModbusTcpServer
-from pymodbus.simulator import DataType, SimData, SimDevice
+from pymodbus.simulator import DataType, SimData
 
 READS = {3: "holding", 4: "input"}
 
@@ -73,10 +71,6 @@ def f32_value(words):
     """The f32 two registers hold (high word first), as a double."""
     (value,) = struct.unpack(">f", b"".join(w.to_bytes(2, "big") for w in words))
     return value
-
-
-def emit(record):
-    print(json.dumps(record), flush=True)
 
 
 class Plant:
@@ -173,32 +167,12 @@ async def main():
     ]
     # The action writes the objective into these registers before every read answers.
     inputs = [SimData(objective_at, values=[0, 0], datatype=DataType.REGISTERS)]
-    # Coils and discrete inputs are unused, but pymodbus needs one block of each when the
-    # four tables are separate (as in most PLCs: input and holding registers apart).
-    bits = [SimData(0, values=[False] * 16, datatype=DataType.BITS)]
-    device = SimDevice(
-        id=spec.get("unit", 1),
-        simdata=(bits, list(bits), holding, inputs),
-        action=action,
-    )
-    server = ModbusTcpServer(device, address=("127.0.0.1", 0))
-    await server.serve_forever(background=True)
-    port = server.transport.sockets[0].getsockname()[1]
+    def ready(port):
+        nonlocal start
+        start = time.monotonic()
+        emit({"ready": True, "port": port})
 
-    done = asyncio.Event()
-    loop = asyncio.get_running_loop()
-    for sig in (signal.SIGTERM, signal.SIGINT):
-        loop.add_signal_handler(sig, done.set)
-
-    def wait_for_stdin_eof():
-        sys.stdin.read()
-        loop.call_soon_threadsafe(done.set)
-
-    threading.Thread(target=wait_for_stdin_eof, daemon=True).start()
-    start = time.monotonic()
-    emit({"ready": True, "port": port})
-    await done.wait()
-    await server.shutdown()
+    await serve(spec.get("unit", 1), holding, inputs, action, ready)
 
 
 if __name__ == "__main__":

@@ -7,7 +7,7 @@ use ridgeline_tests::{ridgeline, write_file};
 use crate::check_command::{config, root};
 use crate::drive::{decay_time_constant, input, run, seeker, settings};
 
-fn rehearse(config: &str, plant: &str, extra: &[&str]) -> ridgeline_tests::Run {
+pub fn rehearse(config: &str, plant: &str, extra: &[&str]) -> ridgeline_tests::Run {
     let mut args = vec!["rehearse", "--config", config, "--plant", plant];
     args.extend_from_slice(extra);
     ridgeline(&args)
@@ -19,7 +19,7 @@ fn json(run: &ridgeline_tests::Run) -> serde_json::Value {
 }
 
 /// Parses a rehearsal CSV into its header and rows of numbers (NaN for empty cells).
-fn read_csv(path: &std::path::Path) -> (Vec<String>, Vec<Vec<f64>>) {
+pub fn read_csv(path: &std::path::Path) -> (Vec<String>, Vec<Vec<f64>>) {
     let text = std::fs::read_to_string(path).expect("CSV written");
     let mut lines = text.lines();
     let header = lines.next().expect("header").split(',').map(str::to_owned).collect();

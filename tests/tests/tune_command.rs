@@ -332,37 +332,48 @@ fn predicted_and_rehearsed(phase_deg: f64) -> (f64, f64) {
     let dir = tempfile::tempdir().unwrap();
     let config = write_file(dir.path(), "loop.toml", &lagged_loop(phase_deg));
     let plant = write_file(dir.path(), "plant.toml", LAGGED_PLANT);
+    let (predicted, summary) = checked_time_constant(&config, "lagged");
+    assert!(summary.contains("with the plant's lag and dead time"), "{summary}");
+    let duration = format!("{}s", (6.0 * predicted).round());
+    let error = rehearsed_error(&config, &plant, &duration, "lagged", "u");
+    (predicted, crate::drive::decay_time_constant(&error, 120, 0.6, 0.05))
+}
+
+/// `check`'s predicted time constant for loop `name` of `config`, with the loop's summary.
+fn checked_time_constant(config: &std::path::Path, name: &str) -> (f64, String) {
     let check = ridgeline(&["check", "--config", config.to_str().unwrap()]);
     assert_eq!(check.code, Some(0), "{}", check.stderr);
-    let predicted: f64 = check
-        .stdout
+    let summary = check.stdout.split(&format!("loop {name}:")).nth(1).expect("the loop's summary").to_owned();
+    let predicted = summary
         .split("predicted time constant ")
         .nth(1)
         .and_then(|rest| rest.split(" s").next())
         .and_then(|n| n.parse().ok())
         .unwrap_or_else(|| panic!("no prediction in:\n{}", check.stdout));
-    assert!(check.stdout.contains("with the plant's lag and dead time"), "{}", check.stdout);
+    (predicted, summary)
+}
+
+/// Rehearses `config` against `plant` and returns, at every tick of loop `name`, how far
+/// input `input`'s estimate is from the true optimum.
+fn rehearsed_error(
+    config: &std::path::Path,
+    plant: &std::path::Path,
+    duration: &str,
+    name: &str,
+    input: &str,
+) -> Vec<f64> {
+    let dir = tempfile::tempdir().unwrap();
     let csv = dir.path().join("csv");
-    let duration = format!("{}s", (6.0 * predicted).round());
-    let run = ridgeline(&[
-        "rehearse",
-        "--config",
+    let run = crate::rehearse_command::rehearse(
         config.to_str().unwrap(),
-        "--plant",
         plant.to_str().unwrap(),
-        "--duration",
-        &duration,
-        "--csv",
-        csv.to_str().unwrap(),
-    ]);
+        &["--duration", duration, "--csv", csv.to_str().unwrap()],
+    );
     assert_eq!(run.code, Some(0), "{}", run.stderr);
-    let text = std::fs::read_to_string(csv.join("lagged.csv")).unwrap();
-    let mut lines = text.lines();
-    let header: Vec<&str> = lines.next().unwrap().split(',').collect();
-    let column = header.iter().position(|h| *h == "u.estimate").expect("an estimate column");
-    let error: Vec<f64> =
-        lines.map(|l| l.split(',').nth(column).unwrap().parse::<f64>().unwrap() - 3.0).collect();
-    (predicted, crate::drive::decay_time_constant(&error, 120, 0.6, 0.05))
+    let (header, rows) = crate::rehearse_command::read_csv(&csv.join(format!("{name}.csv")));
+    let column = |c: String| header.iter().position(|h| *h == c).unwrap_or_else(|| panic!("no column {c}"));
+    let (estimate, optimum) = (column(format!("{input}.estimate")), column(format!("{input}.optimum")));
+    rows.iter().map(|r| r[estimate] - r[optimum]).collect()
 }
 
 #[test]
@@ -449,40 +460,9 @@ fn the_demo_dryer_tuned_as_the_commissioning_docs_show_converges_as_check_predic
     }
     let dir = tempfile::tempdir().unwrap();
     let config = write_file(dir.path(), "tuned.toml", &(head + &dryer));
-    let check = ridgeline(&["check", "--config", config.to_str().unwrap()]);
-    assert_eq!(check.code, Some(0), "{}", check.stderr);
-    let dryer_summary = check.stdout.split("loop dryer-3-inlet").nth(1).unwrap();
-    let predicted: f64 = dryer_summary
-        .split("predicted time constant ")
-        .nth(1)
-        .and_then(|rest| rest.split(" s").next())
-        .and_then(|n| n.parse().ok())
-        .unwrap_or_else(|| panic!("no prediction in:\n{}", check.stdout));
-    let csv = dir.path().join("csv");
+    let (predicted, _) = checked_time_constant(&config, "dryer-3-inlet");
     let plant = crate::check_command::root().join("config/demo-plant.toml");
-    let run = ridgeline(&[
-        "rehearse",
-        "--config",
-        config.to_str().unwrap(),
-        "--plant",
-        plant.to_str().unwrap(),
-        "--duration",
-        "8h",
-        "--csv",
-        csv.to_str().unwrap(),
-    ]);
-    assert_eq!(run.code, Some(0), "{}", run.stderr);
-    let text = std::fs::read_to_string(csv.join("dryer-3-inlet.csv")).unwrap();
-    let mut lines = text.lines();
-    let header: Vec<&str> = lines.next().unwrap().split(',').collect();
-    let column = |name: &str| header.iter().position(|h| *h == name).expect(name);
-    let (estimate, optimum) = (column("dryer_inlet_degc.estimate"), column("dryer_inlet_degc.optimum"));
-    let error: Vec<f64> = lines
-        .map(|l| {
-            let cells: Vec<f64> = l.split(',').map(|c| c.parse().unwrap_or(f64::NAN)).collect();
-            cells[estimate] - cells[optimum]
-        })
-        .collect();
+    let error = rehearsed_error(&config, &plant, "8h", "dryer-3-inlet", "dryer_inlet_degc");
     // Half a dither period (58 ticks) per window: the demodulation's ripple averages out.
     let measured = 2.0 * crate::drive::decay_time_constant(&error, 29, 0.6, 0.05);
     // Source: the averaged rate with plant dynamics (CHECKS.md, after Tan, Nesic & Mareels

@@ -101,13 +101,7 @@ pub async fn set_bounds(
     PathParams((name, input)): PathParams<(String, String)>,
     JsonBody(change): JsonBody<BoundsChange>,
 ) -> Result<Json<LoopStatus>, ApiError> {
-    let handle = state.find(&name)?;
-    let index = handle
-        .config
-        .inputs
-        .iter()
-        .position(|i| i.name == input)
-        .ok_or_else(|| ApiError::NotFound(format!("loop `{name}` has no input `{input}`")))?;
+    let (handle, index) = state.find_input(&name, &input)?;
     let bounds = Range { min: change.min, max: change.max };
     handle.config.inputs[index].check_bounds(bounds).map_err(ApiError::Unprocessable)?;
     handle.set_bounds(index, bounds, &caller.name).await.map(Json).map_err(conflict)
@@ -132,13 +126,7 @@ pub async fn bump_test(
     PathParams((name, input)): PathParams<(String, String)>,
     JsonBody(request): JsonBody<BumpTestRequest>,
 ) -> Result<(axum::http::StatusCode, Json<BumpTestRow>), ApiError> {
-    let handle = state.find(&name)?;
-    let index = handle
-        .config
-        .inputs
-        .iter()
-        .position(|i| i.name == input)
-        .ok_or_else(|| ApiError::NotFound(format!("loop `{name}` has no input `{input}`")))?;
+    let (handle, index) = state.find_input(&name, &input)?;
     if !(request.step.is_finite() && request.step > 0.0) {
         return Err(ApiError::Unprocessable(format!(
             "step: {} is not a number greater than zero",

@@ -39,6 +39,18 @@ impl ApiState {
             .find(|l| l.config.name == name)
             .ok_or_else(|| ApiError::NotFound(format!("there is no loop `{name}`")))
     }
+
+    /// A loop and the index of one of its inputs.
+    fn find_input(&self, name: &str, input: &str) -> Result<(&LoopHandle, usize), ApiError> {
+        let handle = self.find(name)?;
+        let index = handle
+            .config
+            .inputs
+            .iter()
+            .position(|i| i.name == input)
+            .ok_or_else(|| ApiError::NotFound(format!("loop `{name}` has no input `{input}`")))?;
+        Ok((handle, index))
+    }
 }
 
 /// Every error the API answers with.
