@@ -89,6 +89,7 @@ fn records(rows: usize) -> Vec<SampleRecord> {
             let phase = (k / LOOPS) as f64 * 0.157;
             SampleRecord {
                 resumable: true,
+                phase: None,
                 tick: (k / LOOPS) as u64,
                 loop_name: names[k % LOOPS].clone(),
                 at_ms: start_ms + (k / LOOPS) as i64 * TICK_MS,

@@ -188,7 +188,6 @@ pub struct LoopConfig {
     pub name: String,
     pub objective: Expr,
     pub direction: Direction,
-    pub method: MethodKind,
     pub tick_s: f64,
     pub start_mode: Mode,
     pub permit: Option<String>,
@@ -196,7 +195,9 @@ pub struct LoopConfig {
     /// What is known of the plant (`[loops.model]`); `curvature` also from the old
     /// loop key `curvature_hint`.
     pub model: Option<PlantModel>,
-    pub filter: Filter,
+    /// The method and what only it uses (`[loops.filter]`, `[loops.newton]`,
+    /// `[loops.stepwise]`).
+    pub method: MethodConfig,
     pub watchdog: Watchdog,
     pub heartbeat: Option<Heartbeat>,
     pub inputs: Vec<InputConfig>,
@@ -217,9 +218,64 @@ impl LoopConfig {
     pub fn curvature(&self) -> Option<f64> {
         self.model.and_then(|m| m.curvature)
     }
+
+    /// The high-pass and demodulation settings of the dithering methods.
+    pub fn filter(&self) -> Option<&Filter> {
+        match &self.method {
+            MethodConfig::Sine { filter } | MethodConfig::Newton { filter, .. } => Some(filter),
+            MethodConfig::Stepwise(_) => None,
+        }
+    }
+
+    /// How long one cycle of the method takes: the longest dither period, or a dwell.
+    /// A stored estimate older than ten of these is too old to resume from.
+    pub fn cycle_s(&self) -> f64 {
+        match &self.method {
+            MethodConfig::Stepwise(s) => s.dwell_s,
+            _ => self.inputs.iter().filter_map(|i| i.dither).map(|d| d.period_s).fold(0.0, f64::max),
+        }
+    }
 }
 
-#[derive(Debug, Clone, Copy)]
+/// A loop's method with the settings only it uses.
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub enum MethodConfig {
+    Sine { filter: Filter },
+    Newton { filter: Filter, newton: NewtonConfig },
+    Stepwise(StepwiseConfig),
+}
+
+impl MethodConfig {
+    pub fn kind(&self) -> MethodKind {
+        match self {
+            MethodConfig::Sine { .. } => MethodKind::Sine,
+            MethodConfig::Newton { .. } => MethodKind::Newton,
+            MethodConfig::Stepwise(_) => MethodKind::Stepwise,
+        }
+    }
+}
+
+/// `[loops.newton]`.
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub struct NewtonConfig {
+    /// The convergence time constant, whatever the curvature.
+    pub time_constant_s: f64,
+    /// Cutoff of the curvature estimate's filter.
+    pub hessian_hz: f64,
+    /// The curvature to start from; `[loops.model]` curvature when not given.
+    pub initial_curvature: Option<f64>,
+}
+
+/// `[loops.stepwise]`.
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub struct StepwiseConfig {
+    /// How long each setpoint is held.
+    pub dwell_s: f64,
+    /// The end of each dwell over which the objective is averaged.
+    pub average_s: f64,
+}
+
+#[derive(Debug, Clone, Copy, PartialEq)]
 pub struct Filter {
     pub highpass_hz: f64,
     pub lowpass_hz: Option<f64>,
@@ -249,14 +305,31 @@ pub struct InputConfig {
     pub bounds: Range,
     pub safe: f64,
     pub max_rate_per_s: f64,
-    pub dither_amplitude: f64,
-    pub dither_period_s: f64,
-    pub gain: f64,
+    /// The sinusoidal perturbation of sine and newton; none for stepwise.
+    pub dither: Option<Dither>,
+    /// The sine method's integrator gain.
+    pub gain: Option<f64>,
+    /// The stepwise method's step.
+    pub step: Option<f64>,
+}
+
+/// An input's sinusoidal perturbation.
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub struct Dither {
+    pub amplitude: f64,
+    pub period_s: f64,
+}
+
+impl Dither {
+    pub fn hz(&self) -> f64 {
+        1.0 / self.period_s
+    }
 }
 
 impl InputConfig {
-    pub fn dither_hz(&self) -> f64 {
-        1.0 / self.dither_period_s
+    /// The dither amplitude, zero for a method without dither.
+    pub fn dither_amplitude(&self) -> f64 {
+        self.dither.map_or(0.0, |d| d.amplitude)
     }
 
     /// Whether `bounds` may replace this input's operating bounds at run time: finite,
@@ -268,10 +341,10 @@ impl InputConfig {
             Err(format!("{bounds} is empty: min must be below max"))
         } else if !(self.limits.contains(bounds.min) && self.limits.contains(bounds.max)) {
             Err(format!("{bounds} reaches outside the limits {}", self.limits))
-        } else if bounds.span() < 2.0 * self.dither_amplitude {
+        } else if bounds.span() < 2.0 * self.dither_amplitude() {
             Err(format!(
                 "{bounds} is narrower than twice the dither amplitude ({})",
-                show(2.0 * self.dither_amplitude)
+                show(2.0 * self.dither_amplitude())
             ))
         } else {
             Ok(())
@@ -506,6 +579,8 @@ const LOOP_KEYS: &[&str] = &[
     "curvature_hint",
     "model",
     "filter",
+    "newton",
+    "stepwise",
     "watchdog",
     "heartbeat",
     "inputs",
@@ -520,16 +595,8 @@ fn read_loop(t: &Table) -> Option<LoopConfig> {
             None
         }
     });
-    let filter = t.table("filter", &["highpass_hz", "lowpass_hz", "phase_deg"]).map(|f| {
-        Some(Filter {
-            highpass_hz: f.req("highpass_hz")?,
-            lowpass_hz: f.opt("lowpass_hz"),
-            phase_deg: f.or("phase_deg", 0.0)?,
-        })
-    });
-    if !t.has("filter") {
-        t.problem("missing table [loops.filter] (at least `highpass_hz`)");
-    }
+    let kind: Option<MethodKind> = t.or("method", MethodKind::Sine);
+    let method = kind.and_then(|kind| read_method(t, kind));
     let watchdog = t
         .table("watchdog", &["stale_after_s", "objective_range", "on_trip", "recover", "recover_after_s"])
         .map(|w| {
@@ -577,18 +644,17 @@ fn read_loop(t: &Table) -> Option<LoopConfig> {
     if inputs.is_empty() {
         t.problem("a loop needs at least one [[loops.inputs]]");
     }
-    let inputs: Vec<_> = inputs.iter().map(read_input).collect();
+    let inputs: Vec<_> = inputs.iter().map(|i| read_input(i, kind?)).collect();
     Some(LoopConfig {
         name: t.req("name")?,
         objective: objective?,
         direction: t.req("direction")?,
-        method: t.or("method", MethodKind::Sine)?,
         tick_s: t.req("tick_s")?,
         start_mode: t.or("start_mode", Mode::Observing)?,
         permit: t.opt("permit"),
         on_shutdown: t.or("on_shutdown", OnShutdown::Hold)?,
         model,
-        filter: filter??,
+        method: method?,
         watchdog: watchdog??,
         heartbeat: heartbeat.flatten(),
         inputs: inputs.into_iter().collect::<Option<_>>()?,
@@ -605,9 +671,64 @@ const INPUT_KEYS: &[&str] = &[
     "dither_amplitude",
     "dither_period_s",
     "gain",
+    "step",
 ];
 
-fn read_input(t: &Table) -> Option<InputConfig> {
+/// The method's own tables of a loop; the others' tables are refused by name.
+fn read_method(t: &Table, kind: MethodKind) -> Option<MethodConfig> {
+    let own = match kind {
+        MethodKind::Sine => ["filter"].as_slice(),
+        MethodKind::Newton => &["filter", "newton"],
+        MethodKind::Stepwise => &["stepwise"],
+    };
+    for key in ["filter", "newton", "stepwise"] {
+        if !own.contains(&key) && t.has(key) {
+            let why = match key {
+                "filter" => "the stepwise method has no dither to filter".to_owned(),
+                _ => format!("[loops.{key}] belongs to method = \"{key}\""),
+            };
+            t.problem_at(key, format!("not used by method = \"{kind}\": {why}"));
+        }
+    }
+    let missing = |key: &str, what: &str| {
+        if !t.has(key) {
+            t.problem(format!("method = \"{kind}\" needs [loops.{key}] ({what})"));
+        }
+    };
+    let filter = || {
+        missing("filter", "at least `highpass_hz`");
+        let f = t.table("filter", &["highpass_hz", "lowpass_hz", "phase_deg"])?;
+        Some(Filter {
+            highpass_hz: f.req("highpass_hz")?,
+            lowpass_hz: f.opt("lowpass_hz"),
+            phase_deg: f.or("phase_deg", 0.0)?,
+        })
+    };
+    match kind {
+        MethodKind::Sine => Some(MethodConfig::Sine { filter: filter()? }),
+        MethodKind::Newton => {
+            let filter = filter();
+            missing("newton", "at least `time_constant_s` and `hessian_hz`");
+            let n = t.table("newton", &["time_constant_s", "hessian_hz", "initial_curvature"])?;
+            let newton = NewtonConfig {
+                time_constant_s: n.req("time_constant_s")?,
+                hessian_hz: n.req("hessian_hz")?,
+                initial_curvature: n.opt("initial_curvature"),
+            };
+            Some(MethodConfig::Newton { filter: filter?, newton })
+        }
+        MethodKind::Stepwise => {
+            missing("stepwise", "`dwell_s` and `average_s`");
+            let s = t.table("stepwise", &["dwell_s", "average_s"])?;
+            Some(MethodConfig::Stepwise(StepwiseConfig {
+                dwell_s: s.req("dwell_s")?,
+                average_s: s.req("average_s")?,
+            }))
+        }
+    }
+}
+
+fn read_input(t: &Table, method: MethodKind) -> Option<InputConfig> {
     let write =
         t.table("write", &["link", "holding_register", "type", "word_order", "scale", "offset"]).map(|w| {
             Some(WriteTarget {
@@ -621,6 +742,38 @@ fn read_input(t: &Table) -> Option<InputConfig> {
             "missing key `write` (a table like { link = \"plc\", holding_register = 200, type = \"f32\" })",
         );
     }
+    // Each method reads its own keys and refuses the others', naming what they are for.
+    let refuse = |key: &str, why: &str| {
+        if t.has(key) {
+            t.problem_at(key, format!("not used by method = \"{method}\": {why}"));
+        }
+    };
+    let dither =
+        || Some(Dither { amplitude: t.req("dither_amplitude")?, period_s: t.req("dither_period_s")? });
+    // `Some(None)`: the method needs the key and it is missing or unreadable (a recorded
+    // problem); `None`: the method does not use it.
+    let (dither, gain, step) = match method {
+        MethodKind::Sine => {
+            refuse("step", "`step` belongs to the stepwise method");
+            (Some(dither()), Some(t.req("gain")), None)
+        }
+        MethodKind::Newton => {
+            refuse("gain", "its speed is [loops.newton] `time_constant_s`, whatever the curvature");
+            refuse("step", "`step` belongs to the stepwise method");
+            (Some(dither()), None, None)
+        }
+        MethodKind::Stepwise => {
+            for key in ["dither_amplitude", "dither_period_s"] {
+                refuse(key, "the stepwise method steps the input by `step`; it has no dither");
+            }
+            refuse("gain", "the stepwise method moves by `step` each dwell; it has no gain");
+            (None, None, Some(t.req("step")))
+        }
+    };
+    fn needed<T>(value: Option<Option<T>>) -> Option<Option<T>> {
+        value.map_or(Some(None), |v| v.map(Some))
+    }
+    let (dither, gain, step) = (needed(dither), needed(gain), needed(step));
     Some(InputConfig {
         name: t.req("name")?,
         write: write??,
@@ -628,8 +781,8 @@ fn read_input(t: &Table) -> Option<InputConfig> {
         bounds: t.req("bounds")?,
         safe: t.req("safe")?,
         max_rate_per_s: t.req("max_rate_per_s")?,
-        dither_amplitude: t.req("dither_amplitude")?,
-        dither_period_s: t.req("dither_period_s")?,
-        gain: t.req("gain")?,
+        dither: dither?,
+        gain: gain?,
+        step: step?,
     })
 }

@@ -5,7 +5,10 @@ use std::collections::{HashMap, HashSet};
 
 use super::read::Problems;
 use super::show;
-use super::{Codec, Config, InputConfig, LinkKind, LoopConfig, MethodKind, Recover, RegisterType, TagSource};
+use super::{
+    Codec, Config, Filter, InputConfig, LinkKind, LoopConfig, MethodConfig, NewtonConfig, Recover,
+    RegisterType, StepwiseConfig, TagSource,
+};
 
 pub(super) fn validate(config: &Config, p: &Problems) {
     validate_with(config, p, true);
@@ -166,12 +169,6 @@ fn validate_loop(config: &Config, l: &LoopConfig, path: &str, p: &Problems) {
             );
         }
     }
-    if l.method != MethodKind::Sine {
-        p.at(
-            &format!("{path}.method"),
-            format!("method \"{}\" is not available in this version; use \"sine\"", l.method),
-        );
-    }
     let tick_ok = l.tick_s >= MIN_TICK_S;
     if !tick_ok {
         p.at(
@@ -196,7 +193,14 @@ fn validate_loop(config: &Config, l: &LoopConfig, path: &str, p: &Problems) {
             }
         }
     }
-    validate_filter(l, path, tick_ok, p);
+    match &l.method {
+        MethodConfig::Sine { filter } => validate_filter(l, filter, path, tick_ok, p),
+        MethodConfig::Newton { filter, newton } => {
+            validate_filter(l, filter, path, tick_ok, p);
+            validate_newton(l, newton, path, p);
+        }
+        MethodConfig::Stepwise(s) => validate_stepwise(l, s, path, tick_ok, p),
+    }
     validate_watchdog(l, path, p);
     if let Some(hb) = &l.heartbeat {
         match config.link(&hb.link).map(|link| &link.kind) {
@@ -228,9 +232,8 @@ fn validate_loop(config: &Config, l: &LoopConfig, path: &str, p: &Problems) {
     }
 }
 
-fn validate_filter(l: &LoopConfig, path: &str, tick_ok: bool, p: &Problems) {
-    let f = &l.filter;
-    let slowest = l.inputs.iter().map(InputConfig::dither_hz).fold(f64::INFINITY, f64::min);
+fn validate_filter(l: &LoopConfig, f: &Filter, path: &str, tick_ok: bool, p: &Problems) {
+    let slowest = slowest_dither_hz(l);
     if f.highpass_hz <= 0.0 {
         p.at(&format!("{path}.filter.highpass_hz"), "must be greater than zero");
     } else if f.highpass_hz >= slowest {
@@ -255,6 +258,62 @@ fn validate_filter(l: &LoopConfig, path: &str, tick_ok: bool, p: &Problems) {
     }
     if f.phase_deg.abs() > 360.0 {
         p.at(&format!("{path}.filter.phase_deg"), "must be within -360..360 degrees");
+    }
+}
+
+fn slowest_dither_hz(l: &LoopConfig) -> f64 {
+    l.inputs.iter().filter_map(|i| i.dither).map(|d| d.hz()).fold(f64::INFINITY, f64::min)
+}
+
+fn validate_newton(l: &LoopConfig, n: &NewtonConfig, path: &str, p: &Problems) {
+    let at = |key: &str| format!("{path}.newton.{key}");
+    if !(n.time_constant_s > 0.0 && n.time_constant_s.is_finite()) {
+        p.at(&at("time_constant_s"), "must be greater than zero");
+    }
+    let slowest = slowest_dither_hz(l);
+    if !(n.hessian_hz > 0.0 && n.hessian_hz.is_finite()) {
+        p.at(&at("hessian_hz"), "must be greater than zero");
+    } else if n.hessian_hz >= slowest {
+        p.at(
+            &at("hessian_hz"),
+            format!(
+                "{} Hz is not below the dither frequency {slowest:.6} Hz; the curvature estimate must average \
+                 over several dither periods",
+                show(n.hessian_hz)
+            ),
+        );
+    }
+    match n.initial_curvature {
+        Some(c) if !(c > 0.0 && c.is_finite()) => {
+            p.at(&at("initial_curvature"), "must be greater than zero (it is |d2J/du2|)")
+        }
+        None if l.curvature().is_none() => p.at(
+            &format!("{path}.newton"),
+            "initial_curvature is required when [loops.model] curvature is not given",
+        ),
+        _ => {}
+    }
+}
+
+fn validate_stepwise(l: &LoopConfig, s: &StepwiseConfig, path: &str, tick_ok: bool, p: &Problems) {
+    let at = |key: &str| format!("{path}.stepwise.{key}");
+    if !(s.dwell_s.is_finite() && (!tick_ok || s.dwell_s >= 2.0 * l.tick_s)) {
+        p.at(
+            &at("dwell_s"),
+            format!("must be at least two ticks ({} s): one to move, one to read", show(2.0 * l.tick_s)),
+        );
+    }
+    if !(s.average_s.is_finite() && (!tick_ok || s.average_s >= l.tick_s)) {
+        p.at(&at("average_s"), format!("must be at least one tick ({} s)", show(l.tick_s)));
+    } else if s.average_s > s.dwell_s {
+        p.at(
+            &at("average_s"),
+            format!(
+                "{} s is longer than dwell_s ({} s): it averages the end of each dwell",
+                show(s.average_s),
+                show(s.dwell_s)
+            ),
+        );
     }
 }
 
@@ -308,10 +367,19 @@ fn validate_input(config: &Config, l: &LoopConfig, input: &InputConfig, path: &s
         p.at(&format!("{path}.bounds"), format!("{bounds} is empty: min must be below max"));
     } else if limits_ok && !(limits.contains(bounds.min) && limits.contains(bounds.max)) {
         p.at(&format!("{path}.bounds"), format!("{bounds} reaches outside the limits {limits}"));
-    } else if bounds.span() < 2.0 * input.dither_amplitude {
+    } else if let Some(d) = input.dither
+        && bounds.span() < 2.0 * d.amplitude
+    {
         p.at(
             &format!("{path}.dither_amplitude"),
-            format!("a dither of ±{} does not fit in the bounds {bounds}", show(input.dither_amplitude)),
+            format!("a dither of ±{} does not fit in the bounds {bounds}", show(d.amplitude)),
+        );
+    } else if let Some(step) = input.step
+        && bounds.span() < step
+    {
+        p.at(
+            &format!("{path}.step"),
+            format!("a step of {} does not fit in the bounds {bounds}", show(step)),
         );
     }
     if limits_ok && !limits.contains(input.safe) {
@@ -321,33 +389,43 @@ fn validate_input(config: &Config, l: &LoopConfig, input: &InputConfig, path: &s
         p.at(&format!("{path}.write"), why);
     }
     // Common practice, no single source: an integer register needs about ten steps per
-    // dither amplitude, or rounding turns the sine into a square wave and setpoints jump.
+    // dither amplitude (or per step), or rounding turns the sine into a square wave and
+    // setpoints jump.
+    let (moves_by, what) = match (input.dither, input.step) {
+        (Some(d), _) => (d.amplitude, "the dither amplitude"),
+        (None, Some(step)) => (step, "the step"),
+        (None, None) => (0.0, ""),
+    };
     let integer = !matches!(w.codec.kind, RegisterType::F32);
-    if integer && input.dither_amplitude > 0.0 && w.codec.scale.abs() > input.dither_amplitude / 10.0 {
+    if integer && moves_by > 0.0 && w.codec.scale.abs() > moves_by / 10.0 {
         p.at(
             &format!("{path}.write.scale"),
             format!(
-                "a {} register steps by {} while the dither amplitude is {}: use a finer scale \
+                "a {} register steps by {} while {what} is {}: use a finer scale \
                  (at most {}) or an f32 register",
                 w.codec.kind,
                 show(w.codec.scale.abs()),
-                show(input.dither_amplitude),
-                show(input.dither_amplitude / 10.0)
+                show(moves_by),
+                show(moves_by / 10.0)
             ),
         );
     }
-    for (key, value) in [
-        ("max_rate_per_s", input.max_rate_per_s),
-        ("dither_amplitude", input.dither_amplitude),
-        ("dither_period_s", input.dither_period_s),
-        ("gain", input.gain),
-    ] {
+    let mut positive = vec![("max_rate_per_s", input.max_rate_per_s)];
+    if let Some(d) = input.dither {
+        positive.extend([("dither_amplitude", d.amplitude), ("dither_period_s", d.period_s)]);
+    }
+    positive.extend(input.gain.map(|g| ("gain", g)));
+    positive.extend(input.step.map(|s| ("step", s)));
+    for (key, value) in positive {
         if !(value > 0.0 && value.is_finite()) {
             p.at(&format!("{path}.{key}"), "must be greater than zero");
         }
     }
-    if input.dither_amplitude > 0.0 && input.dither_period_s > 0.0 {
-        let dither_rate = 2.0 * std::f64::consts::PI * input.dither_amplitude / input.dither_period_s;
+    if let Some(d) = input.dither
+        && d.amplitude > 0.0
+        && d.period_s > 0.0
+    {
+        let dither_rate = 2.0 * std::f64::consts::PI * d.amplitude / d.period_s;
         if input.max_rate_per_s > 0.0 && dither_rate > input.max_rate_per_s {
             p.at(
                 &format!("{path}.max_rate_per_s"),
@@ -358,14 +436,36 @@ fn validate_input(config: &Config, l: &LoopConfig, input: &InputConfig, path: &s
                 ),
             );
         }
-        if l.tick_s > 0.0 && input.dither_period_s / l.tick_s < 8.0 {
+        if l.tick_s > 0.0 && d.period_s / l.tick_s < 8.0 {
             p.at(
                 &format!("{path}.dither_period_s"),
                 format!(
                     "{} s is only {:.1} ticks of {} s; the dither needs at least 8 ticks per period",
-                    show(input.dither_period_s),
-                    input.dither_period_s / l.tick_s,
+                    show(d.period_s),
+                    d.period_s / l.tick_s,
                     show(l.tick_s)
+                ),
+            );
+        }
+    }
+    if let (Some(step), MethodConfig::Stepwise(s)) = (input.step, &l.method)
+        && step > 0.0
+        && input.max_rate_per_s > 0.0
+        && s.average_s <= s.dwell_s
+    {
+        // The step must be complete before the averaging starts, or the comparison
+        // judges a ramp rather than a level.
+        let ramp_s = step / input.max_rate_per_s;
+        if ramp_s > s.dwell_s - s.average_s {
+            p.at(
+                &format!("{path}.step"),
+                format!(
+                    "a step of {} at max_rate_per_s = {} takes {} s, longer than dwell_s - average_s = {} s: \
+                     the objective would be averaged while the input still moves",
+                    show(step),
+                    show(input.max_rate_per_s),
+                    show(ramp_s),
+                    show(s.dwell_s - s.average_s)
                 ),
             );
         }
@@ -407,10 +507,14 @@ fn check_dither_frequencies(l: &LoopConfig, path: &str, p: &Problems) {
         r.min(fs - r)
     };
     let same = |a: f64, b: f64| (fold(a) - fold(b)).abs() <= 1e-9 * fs;
-    let f: Vec<f64> = l.inputs.iter().map(InputConfig::dither_hz).collect();
+    let Some(f) = l.inputs.iter().map(|i| i.dither.map(|d| d.hz())).collect::<Option<Vec<f64>>>() else {
+        return;
+    };
     if f.iter().any(|x| !x.is_finite() || *x <= 0.0) {
         return;
     }
+    // Newton demodulates the curvature at 2f_j too, so a dither at 3f_j collides with it.
+    let newton = matches!(l.method, MethodConfig::Newton { .. });
     let at = |i: usize| format!("{path}.inputs[{i}].dither_period_s");
     let name = |i: usize| &l.inputs[i].name;
     for i in 0..f.len() {
@@ -439,6 +543,17 @@ fn check_dither_frequencies(l: &LoopConfig, path: &str, p: &Problems) {
                     &at(j),
                     format!(
                         "the dither of `{}` collides with twice the dither frequency of `{}`",
+                        name(j),
+                        name(i)
+                    ),
+                );
+            }
+            if newton && same(3.0 * f[i], f[j]) {
+                p.at(
+                    &at(j),
+                    format!(
+                        "the dither of `{}` collides with three times the dither frequency of `{}`, which the \
+                         curvature estimate of method = \"newton\" cannot tell apart",
                         name(j),
                         name(i)
                     ),

@@ -74,6 +74,8 @@ pub struct SampleRecord {
     pub state: &'static str,
     /// In config order, which is the order they come back in.
     pub inputs: Vec<InputSample>,
+    /// A stepwise loop's dwell phase (`settling` or `averaging`) while it seeks.
+    pub phase: Option<&'static str>,
     /// Whether the estimates were in force (the loop wrote this tick): only those are
     /// kept as the last estimates a restarted loop may resume from.
     pub resumable: bool,
@@ -108,6 +110,8 @@ pub struct SampleRow {
     pub state: String,
     /// In the order they were stored (config order).
     pub inputs: Vec<(String, InputValues)>,
+    /// A stepwise loop's dwell phase while it seeks.
+    pub phase: Option<String>,
 }
 
 /// One input's stored values; `None` where the value was not finite.
@@ -235,7 +239,7 @@ impl History {
         limit: u32,
     ) -> Result<Vec<SampleRow>, HistoryError> {
         let rows = sqlx::query(
-            "SELECT id, at_ms, objective, state, inputs FROM samples
+            "SELECT id, at_ms, objective, state, inputs, phase FROM samples
              WHERE loop = ?1 AND at_ms >= ?2 AND at_ms < ?3 ORDER BY at_ms, id LIMIT ?4",
         )
         .bind(loop_name.to_owned())
@@ -274,7 +278,7 @@ impl History {
         stream::unfold(Some(start), |page| async move {
             let mut page = page.filter(|p| p.remaining > 0)?;
             let rows = sqlx::query(
-                "SELECT id, at_ms, objective, state, inputs FROM samples
+                "SELECT id, at_ms, objective, state, inputs, phase FROM samples
                  WHERE loop = ?1 AND (at_ms, id) > (?2, ?3) AND at_ms < ?4 ORDER BY at_ms, id LIMIT ?5",
             )
             .bind(page.loop_name.clone())
@@ -459,7 +463,16 @@ fn sample_row(r: &SqliteRow, loop_name: &str) -> Result<(i64, SampleRow), Histor
     let inputs = serde_json::from_str::<StoredInputs>(inputs).map_err(|e| {
         HistoryError::Corrupt(format!("the inputs of loop {loop_name}'s sample at {}: {e}", rfc3339(at_ms)))
     })?;
-    Ok((id, SampleRow { at_ms, objective: r.try_get(2)?, state: r.try_get(3)?, inputs: inputs.0 }))
+    Ok((
+        id,
+        SampleRow {
+            at_ms,
+            objective: r.try_get(2)?,
+            state: r.try_get(3)?,
+            inputs: inputs.0,
+            phase: r.try_get(5)?,
+        },
+    ))
 }
 
 fn event_row(r: &SqliteRow) -> Result<EventRow, HistoryError> {

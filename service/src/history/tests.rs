@@ -28,6 +28,7 @@ fn settings(queue_capacity: usize) -> WriterSettings {
 
 fn sample(loop_name: &str, at_ms: i64, inputs: &[(&str, f64, f64, f64)]) -> SampleRecord {
     SampleRecord {
+        phase: None,
         resumable: true,
         loop_name: loop_name.into(),
         tick: at_ms.max(0) as u64,

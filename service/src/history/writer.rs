@@ -52,8 +52,8 @@ pub(super) const PRUNE_SQL: &str = "DELETE FROM samples WHERE id IN (
 /// undone alone): a failed row fails the whole transaction anyway, which rolls back.
 static INSERT_SAMPLES: LazyLock<Vec<String>> = LazyLock::new(|| {
     multi_row(
-        "INSERT OR FAIL INTO samples (loop, at_ms, objective, state, inputs) VALUES ",
-        "(?, ?, ?, ?, ?)",
+        "INSERT OR FAIL INTO samples (loop, at_ms, objective, state, inputs, phase) VALUES ",
+        "(?, ?, ?, ?, ?, ?)",
         "",
     )
 });
@@ -571,7 +571,8 @@ fn insert_samples(
             .bind(s.at_ms)
             .bind(s.objective.filter(|x| x.is_finite()))
             .bind(interned(states, s.state))
-            .bind(inputs_json(&s.inputs));
+            .bind(inputs_json(&s.inputs))
+            .bind(s.phase);
     }
     query
 }

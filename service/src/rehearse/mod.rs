@@ -233,11 +233,15 @@ impl LoopRun {
         let achieved = self.truth.delivered(plant);
 
         // An optimum within a dither amplitude of a bound counts as reached when the
-        // estimate is as close to it as the dither lets it be.
-        let settled = self.control.inputs().iter().zip(&self.optimum).all(|(i, &x)| {
-            let (lo, hi) = i.guard.estimate_range();
-            (i.estimate - x.max(lo).min(hi)).abs() <= SETTLED_FRACTION * i.guard.bounds.span()
-        });
+        // estimate is as close to it as the dither lets it be. A stepwise input steps
+        // around the grid point nearest the optimum (within half a step of it), so it is
+        // settled within one and a half steps.
+        let settled =
+            self.control.inputs().iter().zip(&self.optimum).zip(&self.config.inputs).all(|((i, &x), c)| {
+                let (lo, hi) = i.guard.estimate_range();
+                let within = (SETTLED_FRACTION * i.guard.bounds.span()).max(1.5 * c.step.unwrap_or(0.0));
+                (i.estimate - x.max(lo).min(hi)).abs() <= within
+            });
         self.stats.note_settled(t, settled);
         if t >= (1.0 - SCORED_FRACTION) * duration {
             self.stats.scored_ticks += 1;
@@ -268,7 +272,7 @@ impl LoopRun {
         LoopReport {
             name: self.config.name.clone(),
             direction: self.config.direction.as_str(),
-            method: self.config.method.as_str(),
+            method: self.config.method.kind().as_str(),
             ticks: s.ticks,
             settle_time_s: s.settled_since,
             mean_loss,

@@ -7,11 +7,15 @@
 
 pub mod filter;
 pub mod guard;
+pub mod newton;
 pub mod sine;
+pub mod stepwise;
 
-use crate::config::{Direction, LoopConfig, MethodKind};
+use crate::config::{Direction, Filter, LoopConfig, MethodConfig, NewtonConfig, StepwiseConfig};
 use guard::{Guarded, InputGuard};
+pub use newton::{Newton, NewtonInput, NewtonSettings};
 pub use sine::{Sine, SineInput, SineSettings};
+pub use stepwise::{Stepwise, StepwiseSettings};
 
 /// What a method proposes for one input at one tick.
 #[derive(Debug, Clone, Copy, Default, PartialEq)]
@@ -27,10 +31,58 @@ pub struct Move {
 /// An extremum-seeking method.
 pub trait Method: Send + Sync + std::fmt::Debug {
     /// Feeds the objective read at `tick` (which answers the setpoints written at
-    /// `tick - 1`) and fills one [`Move`] per input.
-    fn step(&mut self, tick: u64, objective: f64, moves: &mut [Move]);
+    /// `tick - 1`), with the inputs as they stand, and fills one [`Move`] per input.
+    fn step(&mut self, tick: u64, objective: f64, inputs: &[InputState], moves: &mut [Move]);
     /// Forgets filter state, for when a loop resumes after not seeking.
     fn restart(&mut self);
+    /// What the method knows beyond the gradient, for status and history.
+    fn detail(&self) -> Detail<'_> {
+        Detail::None
+    }
+}
+
+/// What a method shows beyond each input's gradient.
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub enum Detail<'a> {
+    None,
+    /// Newton: the curvature estimate per input.
+    Curvature(&'a [Curvature]),
+    /// Stepwise: where the loop is in its dwell.
+    Dwell(Dwell),
+}
+
+/// Newton's curvature estimate along one input, `|d2J/du2|` with the sign the direction
+/// needs (positive: a maximum when maximizing, a minimum when minimizing; negative: the
+/// wrong sign), and whether the Newton step used it this tick.
+#[derive(Debug, Clone, Copy, PartialEq, serde::Serialize)]
+pub struct Curvature {
+    pub estimate: f64,
+    pub trusted: bool,
+}
+
+/// Where a stepwise loop is in its dwell.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub struct Dwell {
+    /// The input stepped into this dwell; `None` for the first, the reference level.
+    pub input: Option<usize>,
+    pub phase: DwellPhase,
+    pub remaining_ticks: u64,
+}
+
+/// The two parts of a dwell: waiting for the plant, then averaging the objective.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum DwellPhase {
+    Settling,
+    Averaging,
+}
+
+impl DwellPhase {
+    pub fn as_str(self) -> &'static str {
+        match self {
+            DwellPhase::Settling => "settling",
+            DwellPhase::Averaging => "averaging",
+        }
+    }
 }
 
 /// One input as the core sees it after a tick.
@@ -78,18 +130,19 @@ impl Seeker {
 
     /// The core for a configured loop, starting from the given estimates.
     pub fn for_loop(config: &LoopConfig, estimates: &[f64]) -> Self {
-        let method: Box<dyn Method> = match config.method {
-            // Validation refuses the others until they exist.
-            MethodKind::Sine | MethodKind::Newton | MethodKind::Stepwise => {
-                Box::new(Sine::new(&sine_settings(config)))
+        let method: Box<dyn Method> = match &config.method {
+            MethodConfig::Sine { filter } => Box::new(Sine::new(&sine_settings(config, filter))),
+            MethodConfig::Newton { filter, newton } => {
+                Box::new(Newton::new(&newton_settings(config, filter, newton)))
             }
+            MethodConfig::Stepwise(s) => Box::new(Stepwise::new(&stepwise_settings(config, s))),
         };
         let guards: Vec<_> = config
             .inputs
             .iter()
             .map(|i| InputGuard {
                 bounds: i.bounds,
-                amplitude: i.dither_amplitude,
+                amplitude: i.dither_amplitude(),
                 max_step: i.max_rate_per_s * config.tick_s,
             })
             .collect();
@@ -99,7 +152,7 @@ impl Seeker {
     /// One seeking tick: step the method, move each estimate through the guard and set
     /// the applied setpoint to estimate plus dither, clamped to the bounds.
     pub fn step(&mut self, tick: u64, objective: f64) -> GuardActions {
-        self.method.step(tick, objective, &mut self.moves);
+        self.method.step(tick, objective, &self.inputs, &mut self.moves);
         let mut acted = GuardActions::default();
         for (input, mv) in self.inputs.iter_mut().zip(&self.moves) {
             let estimate = input.guard.next_estimate(input.estimate, input.estimate + mv.step);
@@ -144,6 +197,11 @@ impl Seeker {
         &self.inputs
     }
 
+    /// What the method shows beyond the gradients.
+    pub fn detail(&self) -> Detail<'_> {
+        self.method.detail()
+    }
+
     /// Changes an input's operating bounds from the next tick on.
     pub fn set_bounds(&mut self, input: usize, bounds: crate::config::Range) {
         if let Some(i) = self.inputs.get_mut(input) {
@@ -157,21 +215,60 @@ fn note(acted: &mut GuardActions, g: Guarded) {
     acted.rate_limited |= g.rate_limited;
 }
 
+fn sign(config: &LoopConfig) -> f64 {
+    match config.direction {
+        Direction::Maximize => 1.0,
+        Direction::Minimize => -1.0,
+    }
+}
+
 /// The sine method's settings for a configured loop.
-pub fn sine_settings(config: &LoopConfig) -> SineSettings {
+pub fn sine_settings(config: &LoopConfig, filter: &Filter) -> SineSettings {
     SineSettings {
         tick_s: config.tick_s,
-        sign: match config.direction {
-            Direction::Maximize => 1.0,
-            Direction::Minimize => -1.0,
-        },
-        highpass_hz: config.filter.highpass_hz,
-        lowpass_hz: config.filter.lowpass_hz,
-        phase_deg: config.filter.phase_deg,
+        sign: sign(config),
+        highpass_hz: filter.highpass_hz,
+        lowpass_hz: filter.lowpass_hz,
+        phase_deg: filter.phase_deg,
         inputs: config
             .inputs
             .iter()
-            .map(|i| SineInput { amplitude: i.dither_amplitude, period_s: i.dither_period_s, gain: i.gain })
+            .filter_map(|i| {
+                let d = i.dither?;
+                Some(SineInput { amplitude: d.amplitude, period_s: d.period_s, gain: i.gain.unwrap_or(0.0) })
+            })
             .collect(),
+    }
+}
+
+/// The Newton method's settings for a configured loop: the initial curvature from
+/// `[loops.newton]`, else from `[loops.model]` (validation requires one of them).
+pub fn newton_settings(config: &LoopConfig, filter: &Filter, newton: &NewtonConfig) -> NewtonSettings {
+    NewtonSettings {
+        tick_s: config.tick_s,
+        sign: sign(config),
+        highpass_hz: filter.highpass_hz,
+        lowpass_hz: filter.lowpass_hz,
+        phase_deg: filter.phase_deg,
+        time_constant_s: newton.time_constant_s,
+        hessian_hz: newton.hessian_hz,
+        initial_curvature: newton.initial_curvature.or(config.curvature()).unwrap_or(1.0),
+        inputs: config
+            .inputs
+            .iter()
+            .filter_map(|i| i.dither)
+            .map(|d| NewtonInput { amplitude: d.amplitude, period_s: d.period_s })
+            .collect(),
+    }
+}
+
+/// The stepwise method's settings for a configured loop, its times in whole ticks.
+pub fn stepwise_settings(config: &LoopConfig, s: &StepwiseConfig) -> StepwiseSettings {
+    let ticks = |seconds: f64| (seconds / config.tick_s).round() as u64;
+    StepwiseSettings {
+        sign: sign(config),
+        dwell_ticks: ticks(s.dwell_s),
+        average_ticks: ticks(s.average_s),
+        steps: config.inputs.iter().map(|i| i.step.unwrap_or(0.0)).collect(),
     }
 }

@@ -4,7 +4,7 @@
 use std::f64::consts::TAU;
 
 use super::filter::FirstOrder;
-use super::{Method, Move};
+use super::{InputState, Method, Move};
 
 /// Settings of one input's dither and integrator.
 #[derive(Debug, Clone, Copy)]
@@ -32,7 +32,7 @@ const MAX_TABLE_TICKS: f64 = 65_536.0;
 /// A channel's dither wave and its demodulation reference (the same wave delayed by
 /// `phase_deg`).
 #[derive(Debug, Clone)]
-enum Wave {
+pub(super) enum Wave {
     /// The period is a whole number of ticks (the usual case): one value per tick of
     /// the period, so a tick costs a lookup and long runs lose no phase accuracy.
     Table { dither: Vec<f64>, reference: Vec<f64> },
@@ -41,7 +41,7 @@ enum Wave {
 }
 
 impl Wave {
-    fn new(ticks_per_period: f64, shift_rad: f64) -> Self {
+    pub(super) fn new(ticks_per_period: f64, shift_rad: f64) -> Self {
         let whole = ticks_per_period.round();
         if (ticks_per_period - whole).abs() <= 1e-9 * whole && whole <= MAX_TABLE_TICKS {
             let table =
@@ -55,7 +55,7 @@ impl Wave {
     /// `sin` of the phase at `tick - 1` minus the shift (the reference for the objective
     /// read at `tick`), and `sin` of the phase at `tick` (this tick's dither).
     #[inline]
-    fn at(&self, tick: i64) -> (f64, f64) {
+    pub(super) fn at(&self, tick: i64) -> (f64, f64) {
         match self {
             Wave::Table { dither, reference } => {
                 let k = tick.rem_euclid(dither.len() as i64) as usize;
@@ -113,7 +113,7 @@ impl Sine {
 }
 
 impl Method for Sine {
-    fn step(&mut self, tick: u64, objective: f64, moves: &mut [Move]) {
+    fn step(&mut self, tick: u64, objective: f64, _inputs: &[InputState], moves: &mut [Move]) {
         let hp = self.highpass.filter(objective);
         // Ticks beyond i64 would take 292 billion years at 1 per second.
         let tick = i64::try_from(tick).unwrap_or(i64::MAX);
@@ -171,9 +171,9 @@ mod tests {
             inputs: vec![SineInput { amplitude: 0.5, period_s: 20.0, gain: 1.0 }],
         });
         let mut moves = [Move::default()];
-        sine.step(0, 1.0, &mut moves);
+        sine.step(0, 1.0, &[], &mut moves);
         assert_eq!(moves[0].dither, 0.0);
-        sine.step(5, 1.0, &mut moves);
+        sine.step(5, 1.0, &[], &mut moves);
         assert!((moves[0].dither - 0.5).abs() < 1e-15);
     }
 }

@@ -624,6 +624,11 @@ impl Control {
         self.machine.permitted && self.permit_known
     }
 
+    /// What the method shows beyond the gradients (Newton's curvature, stepwise's dwell).
+    pub fn detail(&self) -> crate::seek::Detail<'_> {
+        self.seeker.detail()
+    }
+
     pub fn inputs(&self) -> &[InputState] {
         self.seeker.inputs()
     }

@@ -3,6 +3,7 @@
 use serde::Serialize;
 
 use crate::config::{LoopConfig, Range};
+use crate::seek::Curvature;
 
 #[derive(Debug, Clone, PartialEq, Serialize)]
 pub struct LoopStatus {
@@ -23,6 +24,20 @@ pub struct LoopStatus {
     /// contract's list; an addition).
     pub skipped_ticks: u64,
     pub inputs: Vec<InputStatus>,
+    /// A stepwise loop's dwell while it seeks.
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub dwell: Option<DwellStatus>,
+}
+
+/// Where a seeking stepwise loop is in its dwell.
+#[derive(Debug, Clone, PartialEq, Serialize)]
+pub struct DwellStatus {
+    /// The input stepped into this dwell; `None` for the first, the reference level.
+    pub input: Option<String>,
+    /// `settling` or `averaging`.
+    pub phase: &'static str,
+    /// Seconds until the dwell ends and the next step is taken.
+    pub ends_in_s: f64,
 }
 
 #[derive(Debug, Clone, PartialEq, Serialize)]
@@ -34,6 +49,9 @@ pub struct InputStatus {
     pub bounds: Bounds,
     pub limits: Bounds,
     pub safe: f64,
+    /// Newton's curvature estimate along this input.
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub curvature: Option<Curvature>,
 }
 
 #[derive(Debug, Clone, Copy, PartialEq, Serialize)]
@@ -57,7 +75,7 @@ impl LoopStatus {
             state: config.start_mode.as_str(),
             fallback_reason: None,
             direction: config.direction.as_str(),
-            method: config.method.as_str(),
+            method: config.method.kind().as_str(),
             permitted: true,
             objective: None,
             objective_at: None,
@@ -74,8 +92,10 @@ impl LoopStatus {
                     bounds: i.bounds.into(),
                     limits: i.limits.into(),
                     safe: i.safe,
+                    curvature: None,
                 })
                 .collect(),
+            dwell: None,
         }
     }
 }

@@ -11,11 +11,12 @@ use tokio_util::sync::CancellationToken;
 use super::control::{
     Cause, Control, FinishedTest, Permit, Reading, State, TestOutcome, TestRefused, TickReport,
 };
-use super::status::{InputStatus, LoopStatus};
+use super::status::{DwellStatus, InputStatus, LoopStatus};
 use crate::config::{Config, LoopConfig, Mode, OnTrip, Range};
 use crate::field::{LinkError, Links, LoopIo, Urgency};
 use crate::history::{BumpTestRow, History, InputSample, SampleRecord, now_ms, rfc3339};
 pub use crate::report::Reporting;
+use crate::seek::Detail;
 use crate::seek::guard::starting_point;
 
 /// Why a running loop refused a command.
@@ -489,11 +490,11 @@ impl LoopTask {
         let now = now_ms();
         let mut estimates = Vec::new();
         let mut detail = serde_json::Map::new();
+        let fresh_s = 10.0 * self.config.cycle_s();
         for ((cfg, input), back) in self.config.inputs.iter().zip(self.control.inputs()).zip(&read_back) {
             let stored = stored.iter().find(|s| s.input == cfg.name);
             let age_s = stored.map(|s| (now - s.at_ms) as f64 / 1000.0);
-            let recent =
-                stored.filter(|_| age_s.is_some_and(|a| a < 10.0 * cfg.dither_period_s)).map(|s| s.estimate);
+            let recent = stored.filter(|_| age_s.is_some_and(|a| a < fresh_s)).map(|s| s.estimate);
             let (estimate, origin) = starting_point(recent, *back, input.guard.bounds, cfg.safe);
             estimates.push(estimate);
             detail.insert(
@@ -786,13 +787,26 @@ impl LoopTask {
         // Before a loop has started it has no estimates, only what it reads (and a
         // fallback value, if it tripped meanwhile).
         let known = |v: f64| if c.is_started() { v } else { f64::NAN };
+        let curvature = match c.detail() {
+            Detail::Curvature(estimates) if c.is_started() => estimates,
+            _ => &[],
+        };
+        let dwell = match c.detail() {
+            Detail::Dwell(d) if c.state() == State::Seeking => Some(DwellStatus {
+                input: d.input.map(|i| self.config.inputs[i].name.clone()),
+                phase: d.phase.as_str(),
+                ends_in_s: d.remaining_ticks as f64 * self.config.tick_s,
+            }),
+            _ => None,
+        };
         let inputs = self
             .config
             .inputs
             .iter()
+            .enumerate()
             .zip(c.inputs())
             .zip(c.applied())
-            .map(|((cfg, i), &applied)| InputStatus {
+            .map(|(((k, cfg), i), &applied)| InputStatus {
                 name: cfg.name.clone(),
                 applied,
                 estimate: known(i.estimate),
@@ -800,6 +814,7 @@ impl LoopTask {
                 bounds: i.guard.bounds.into(),
                 limits: cfg.limits.into(),
                 safe: cfg.safe,
+                curvature: curvature.get(k).copied(),
             })
             .collect();
         self.status.send_replace(LoopStatus {
@@ -808,13 +823,14 @@ impl LoopTask {
             state: c.state().as_str(),
             fallback_reason: c.tripped().map(|t| t.as_str().to_owned()),
             direction: self.config.direction.as_str(),
-            method: self.config.method.as_str(),
+            method: self.config.method.kind().as_str(),
             permitted: c.permitted(),
             objective: c.objective(),
             objective_at: self.objective_at.map(rfc3339),
             ticks: c.ticks(),
             skipped_ticks: self.skipped_ticks,
             inputs,
+            dwell,
         });
     }
 
@@ -859,6 +875,10 @@ impl LoopTask {
                     .collect(),
                 // Only an estimate that was in force is one to resume from.
                 resumable: report.write && c.state() != State::Fallback,
+                phase: match c.detail() {
+                    Detail::Dwell(d) if c.state() == State::Seeking => Some(d.phase.as_str()),
+                    _ => None,
+                },
             });
         }
     }
