@@ -11,7 +11,7 @@ use serde::Deserialize;
 use serde_json::{Value, json};
 
 use super::{ApiError, ApiState, JsonBody, Operator, PathParams, QueryParams, Reader, openapi};
-use crate::config::{Mode, Range};
+use crate::config::{MethodKind, Mode, Range};
 use crate::history::{BumpTestRow, EventRow, SampleRow, parse_rfc3339, rfc3339};
 use crate::supervisor::CommandError;
 use crate::supervisor::status::LoopStatus;
@@ -202,6 +202,8 @@ pub async fn samples(
 ) -> Result<Response, ApiError> {
     let handle = state.find(&name)?;
     let history = state.history.as_ref().ok_or_else(|| ApiError::Unavailable("no history is kept".into()))?;
+    // Only a stepwise loop has dwell phases: the other methods' samples keep their shape.
+    let phase = handle.config.method.kind() == MethodKind::Stepwise;
     let since = time_param("since", query.since.as_deref())?;
     let until = time_param("until", query.until.as_deref())?;
     let csv = match query.format.as_deref() {
@@ -215,13 +217,14 @@ pub async fn samples(
     if csv {
         let limit = limit_param(query.limit, SAMPLES_DEFAULT, SAMPLES_MAX_CSV)?;
         let inputs: Vec<String> = handle.config.inputs.iter().map(|i| i.name.clone()).collect();
-        let mut header_line = String::from("at,objective,state");
+        let mut header_line =
+            String::from(if phase { "at,objective,state,phase" } else { "at,objective,state" });
         for i in &inputs {
             header_line.push_str(&format!(",{i}.applied,{i}.estimate,{i}.gradient"));
         }
         header_line.push('\n');
         let rows = history.sample_stream(&name, since, until, limit).map(move |row| match row {
-            Ok(row) => Ok(csv_line(&row, &inputs)),
+            Ok(row) => Ok(csv_line(&row, &inputs, phase)),
             Err(e) => {
                 tracing::error!(error = %e, "history read failed during a CSV export");
                 Err(std::io::Error::other("history read failed"))
@@ -242,21 +245,31 @@ pub async fn samples(
     let limit = limit_param(query.limit, SAMPLES_DEFAULT, SAMPLES_MAX_JSON)?;
     let rows =
         history.samples(&name, since, until, limit).await.map_err(|e| ApiError::Internal(e.to_string()))?;
-    Ok(Json(rows.iter().map(sample_json).collect::<Vec<_>>()).into_response())
+    Ok(Json(rows.iter().map(|row| sample_json(row, phase)).collect::<Vec<_>>()).into_response())
 }
 
-/// A stored sample as JSON; serde_json writes a value that is not finite as `null`.
-fn sample_json(row: &SampleRow) -> Value {
+/// A stored sample as JSON, with the dwell phase (or null) when `phase` (a stepwise
+/// loop); serde_json writes a value that is not finite as `null`.
+fn sample_json(row: &SampleRow, phase: bool) -> Value {
     let inputs: serde_json::Map<String, Value> =
         row.inputs.iter().map(|(name, values)| (name.clone(), json!(values))).collect();
-    json!({"at": rfc3339(row.at_ms), "objective": row.objective, "state": row.state, "inputs": inputs})
+    let mut sample =
+        json!({"at": rfc3339(row.at_ms), "objective": row.objective, "state": row.state, "inputs": inputs});
+    if phase {
+        sample["phase"] = json!(row.phase);
+    }
+    sample
 }
 
-/// One CSV row with the loop's inputs in config order; missing or non-finite values
-/// are empty cells.
-fn csv_line(row: &SampleRow, inputs: &[String]) -> String {
+/// One CSV row with the loop's inputs in config order, and the dwell phase after the
+/// state when `phase` (a stepwise loop); missing or non-finite values are empty cells.
+fn csv_line(row: &SampleRow, inputs: &[String], phase: bool) -> String {
     let cell = |v: Option<f64>| v.filter(|x| x.is_finite()).map(|x| x.to_string()).unwrap_or_default();
     let mut line = format!("{},{},{}", rfc3339(row.at_ms), cell(row.objective), row.state);
+    if phase {
+        line.push(',');
+        line.push_str(row.phase.as_deref().unwrap_or_default());
+    }
     for name in inputs {
         let values = row.inputs.iter().find(|(n, _)| n == name).map(|(_, v)| v);
         for value in

@@ -40,8 +40,140 @@ fn write_errors(mut responses: Value) -> Value {
     responses
 }
 
-pub fn document() -> Value {
+/// The schemas the routes refer to.
+fn schemas() -> Value {
     let number_or_null = json!({"type": ["number", "null"]});
+    json!({
+        "Error": {
+            "type": "object",
+            "required": ["error"],
+            "properties": {"error": {"type": "object", "required": ["code", "message"], "properties": {
+                "code": {"type": "string", "description": "snake_case reason."},
+                "message": {"type": "string", "description": "One sentence."}
+            }}}
+        },
+        "Bounds": {"type": "object", "required": ["min", "max"], "properties": {"min": {"type": "number"}, "max": {"type": "number"}}},
+        "InputStatus": {
+            "type": "object",
+            "required": ["name", "applied", "estimate", "gradient", "bounds", "limits", "safe"],
+            "properties": {
+                "name": {"type": "string"},
+                "applied": number_or_null, "estimate": number_or_null, "gradient": number_or_null,
+                "bounds": {"$ref": "#/components/schemas/Bounds"},
+                "limits": {"$ref": "#/components/schemas/Bounds"},
+                "safe": {"type": "number"},
+                "curvature": {"$ref": "#/components/schemas/Curvature"}
+            }
+        },
+        "Curvature": {
+            "type": "object",
+            "required": ["estimate", "trusted"],
+            "description": "Newton loops only, once started (omitted for the other methods): the curvature estimate along this input.",
+            "properties": {
+                "estimate": {"type": "number", "description": "|d2J/du2| with the sign the direction needs: positive is a maximum when maximizing, a minimum when minimizing; negative is the wrong sign."},
+                "trusted": {"type": "boolean", "description": "Whether this tick's Newton step used the estimate; when not, the loop took a gradient step scaled by the initial curvature."}
+            }
+        },
+        "Dwell": {
+            "type": "object",
+            "required": ["input", "phase", "ends_in_s"],
+            "description": "Stepwise loops only, while seeking (omitted otherwise): where the loop is in its dwell.",
+            "properties": {
+                "input": {"type": ["string", "null"], "description": "The input stepped into this dwell; null for the first dwell, the reference level."},
+                "phase": {"enum": ["settling", "averaging"], "description": "Waiting for the plant, then averaging the objective over the end of the dwell."},
+                "ends_in_s": {"type": "number", "minimum": 0, "description": "Seconds until the dwell ends and the next step is taken."}
+            }
+        },
+        "LoopStatus": {
+            "type": "object",
+            "required": ["name", "mode", "state", "fallback_reason", "direction", "method", "permitted", "objective", "objective_at", "ticks", "inputs"],
+            "properties": {
+                "name": {"type": "string"},
+                "mode": {"enum": ["seeking", "holding", "observing", "stopped"]},
+                "state": {"enum": ["seeking", "holding", "observing", "stopped", "fallback", "no_permit", "testing"]},
+                "fallback_reason": {"type": ["string", "null"]},
+                "direction": {"enum": ["maximize", "minimize"]},
+                "method": {"enum": ["sine", "newton", "stepwise"]},
+                "permitted": {"type": "boolean"},
+                "objective": number_or_null,
+                "objective_at": {"type": ["string", "null"], "format": "date-time"},
+                "ticks": {"type": "integer", "minimum": 0},
+                "skipped_ticks": {"type": "integer", "minimum": 0},
+                "inputs": {"type": "array", "items": {"$ref": "#/components/schemas/InputStatus"}},
+                "dwell": {"$ref": "#/components/schemas/Dwell"}
+            }
+        },
+        "ModeChange": {
+            "type": "object", "required": ["mode"], "additionalProperties": false,
+            "properties": {"mode": {"enum": ["seeking", "holding", "observing", "stopped"]}}
+        },
+        "BoundsChange": {
+            "type": "object", "required": ["min", "max"], "additionalProperties": false,
+            "properties": {"min": {"type": "number"}, "max": {"type": "number"}}
+        },
+        "BumpTestRequest": {
+            "type": "object", "required": ["step"], "additionalProperties": false,
+            "properties": {
+                "step": {"type": "number", "exclusiveMinimum": 0, "description": "The staircase goes u0, u0 + step, u0 - step, u0; every level inside the input's bounds."},
+                "settle_max_s": {"type": "number", "exclusiveMinimum": 0, "maximum": SETTLE_MAX_MAX_S, "default": SETTLE_MAX_DEFAULT_S, "description": "Longest a level is held when the objective does not settle."}
+            }
+        },
+        "BumpTest": {
+            "type": "object",
+            "required": ["id", "loop", "input", "status", "step", "settle_max_s", "setpoints", "started_at", "finished_at", "abort_reason", "levels", "result", "fit_error", "actor"],
+            "properties": {
+                "id": {"type": "integer"},
+                "loop": {"type": "string"},
+                "input": {"type": "string"},
+                "status": {"enum": ["running", "done", "aborted"]},
+                "step": {"type": "number"},
+                "settle_max_s": {"type": "number"},
+                "setpoints": {"type": "array", "items": {"type": "number"}, "description": "u0, u0 + step, u0 - step, u0."},
+                "started_at": {"type": "string", "format": "date-time"},
+                "finished_at": {"type": ["string", "null"], "format": "date-time"},
+                "abort_reason": {"type": ["string", "null"]},
+                "levels": {"type": "array", "items": {"type": "object", "required": ["setpoint", "from", "to", "settled_objective", "settled"], "properties": {
+                    "setpoint": {"type": "number"},
+                    "from": {"type": "string", "format": "date-time"},
+                    "to": {"type": "string", "format": "date-time"},
+                    "settled_objective": number_or_null,
+                    "settled": {"type": "boolean", "description": "False when the level ended at settle_max_s."}
+                }}},
+                "result": {"type": ["object", "null"], "description": "Once done: the fitted plant, the recommended tuning and its proof, as `ridgeline tune --json` prints them."},
+                "fit_error": {"type": ["string", "null"], "description": "Once done without a result: why the record gave no tuning."},
+                "actor": {"type": "string"}
+            }
+        },
+        "Sample": {
+            "type": "object",
+            "required": ["at", "objective", "state", "inputs"],
+            "properties": {
+                "at": {"type": "string", "format": "date-time"},
+                "objective": number_or_null,
+                "state": {"type": "string"},
+                "inputs": {"type": "object", "additionalProperties": {
+                    "type": "object", "required": ["applied", "estimate", "gradient"],
+                    "properties": {"applied": number_or_null, "estimate": number_or_null, "gradient": number_or_null}
+                }},
+                "phase": {"enum": ["settling", "averaging", null], "description": "Stepwise loops only (omitted for the other methods): the dwell phase at this tick; null when the loop was not seeking."}
+            }
+        },
+        "Event": {
+            "type": "object",
+            "required": ["id", "at", "loop", "kind", "detail", "actor"],
+            "properties": {
+                "id": {"type": "integer"},
+                "at": {"type": "string", "format": "date-time"},
+                "loop": {"type": ["string", "null"]},
+                "kind": {"type": "string", "description": "mode_changed, bounds_changed, tripped, recovered, permit_withdrawn, permit_granted, permit_lost, link_conflict, loop_started, loop_stopped, bump_test_started, bump_test_done, bump_test_aborted, link_down, link_up, service_started, service_stopped"},
+                "detail": {"description": "JSON detail of the event."},
+                "actor": {"type": "string", "description": "The token's name, or \"system\"."}
+            }
+        }
+    })
+}
+
+pub fn document() -> Value {
     json!({
         "openapi": "3.1.0",
         "info": {
@@ -51,112 +183,7 @@ pub fn document() -> Value {
         },
         "components": {
             "securitySchemes": {"bearer": {"type": "http", "scheme": "bearer", "description": "A token from `ridgeline token`; its SHA-256 is in the config's [[access]]."}},
-            "schemas": {
-                "Error": {
-                    "type": "object",
-                    "required": ["error"],
-                    "properties": {"error": {"type": "object", "required": ["code", "message"], "properties": {
-                        "code": {"type": "string", "description": "snake_case reason."},
-                        "message": {"type": "string", "description": "One sentence."}
-                    }}}
-                },
-                "Bounds": {"type": "object", "required": ["min", "max"], "properties": {"min": {"type": "number"}, "max": {"type": "number"}}},
-                "InputStatus": {
-                    "type": "object",
-                    "required": ["name", "applied", "estimate", "gradient", "bounds", "limits", "safe"],
-                    "properties": {
-                        "name": {"type": "string"},
-                        "applied": number_or_null, "estimate": number_or_null, "gradient": number_or_null,
-                        "bounds": {"$ref": "#/components/schemas/Bounds"},
-                        "limits": {"$ref": "#/components/schemas/Bounds"},
-                        "safe": {"type": "number"}
-                    }
-                },
-                "LoopStatus": {
-                    "type": "object",
-                    "required": ["name", "mode", "state", "fallback_reason", "direction", "method", "permitted", "objective", "objective_at", "ticks", "inputs"],
-                    "properties": {
-                        "name": {"type": "string"},
-                        "mode": {"enum": ["seeking", "holding", "observing", "stopped"]},
-                        "state": {"enum": ["seeking", "holding", "observing", "stopped", "fallback", "no_permit", "testing"]},
-                        "fallback_reason": {"type": ["string", "null"]},
-                        "direction": {"enum": ["maximize", "minimize"]},
-                        "method": {"enum": ["sine", "newton", "stepwise"]},
-                        "permitted": {"type": "boolean"},
-                        "objective": number_or_null,
-                        "objective_at": {"type": ["string", "null"], "format": "date-time"},
-                        "ticks": {"type": "integer", "minimum": 0},
-                        "skipped_ticks": {"type": "integer", "minimum": 0},
-                        "inputs": {"type": "array", "items": {"$ref": "#/components/schemas/InputStatus"}}
-                    }
-                },
-                "ModeChange": {
-                    "type": "object", "required": ["mode"], "additionalProperties": false,
-                    "properties": {"mode": {"enum": ["seeking", "holding", "observing", "stopped"]}}
-                },
-                "BoundsChange": {
-                    "type": "object", "required": ["min", "max"], "additionalProperties": false,
-                    "properties": {"min": {"type": "number"}, "max": {"type": "number"}}
-                },
-                "BumpTestRequest": {
-                    "type": "object", "required": ["step"], "additionalProperties": false,
-                    "properties": {
-                        "step": {"type": "number", "exclusiveMinimum": 0, "description": "The staircase goes u0, u0 + step, u0 - step, u0; every level inside the input's bounds."},
-                        "settle_max_s": {"type": "number", "exclusiveMinimum": 0, "maximum": SETTLE_MAX_MAX_S, "default": SETTLE_MAX_DEFAULT_S, "description": "Longest a level is held when the objective does not settle."}
-                    }
-                },
-                "BumpTest": {
-                    "type": "object",
-                    "required": ["id", "loop", "input", "status", "step", "settle_max_s", "setpoints", "started_at", "finished_at", "abort_reason", "levels", "result", "fit_error", "actor"],
-                    "properties": {
-                        "id": {"type": "integer"},
-                        "loop": {"type": "string"},
-                        "input": {"type": "string"},
-                        "status": {"enum": ["running", "done", "aborted"]},
-                        "step": {"type": "number"},
-                        "settle_max_s": {"type": "number"},
-                        "setpoints": {"type": "array", "items": {"type": "number"}, "description": "u0, u0 + step, u0 - step, u0."},
-                        "started_at": {"type": "string", "format": "date-time"},
-                        "finished_at": {"type": ["string", "null"], "format": "date-time"},
-                        "abort_reason": {"type": ["string", "null"]},
-                        "levels": {"type": "array", "items": {"type": "object", "required": ["setpoint", "from", "to", "settled_objective", "settled"], "properties": {
-                            "setpoint": {"type": "number"},
-                            "from": {"type": "string", "format": "date-time"},
-                            "to": {"type": "string", "format": "date-time"},
-                            "settled_objective": number_or_null,
-                            "settled": {"type": "boolean", "description": "False when the level ended at settle_max_s."}
-                        }}},
-                        "result": {"type": ["object", "null"], "description": "Once done: the fitted plant, the recommended tuning and its proof, as `ridgeline tune --json` prints them."},
-                        "fit_error": {"type": ["string", "null"], "description": "Once done without a result: why the record gave no tuning."},
-                        "actor": {"type": "string"}
-                    }
-                },
-                "Sample": {
-                    "type": "object",
-                    "required": ["at", "objective", "state", "inputs"],
-                    "properties": {
-                        "at": {"type": "string", "format": "date-time"},
-                        "objective": number_or_null,
-                        "state": {"type": "string"},
-                        "inputs": {"type": "object", "additionalProperties": {
-                            "type": "object", "required": ["applied", "estimate", "gradient"],
-                            "properties": {"applied": number_or_null, "estimate": number_or_null, "gradient": number_or_null}
-                        }}
-                    }
-                },
-                "Event": {
-                    "type": "object",
-                    "required": ["id", "at", "loop", "kind", "detail", "actor"],
-                    "properties": {
-                        "id": {"type": "integer"},
-                        "at": {"type": "string", "format": "date-time"},
-                        "loop": {"type": ["string", "null"]},
-                        "kind": {"type": "string", "description": "mode_changed, bounds_changed, tripped, recovered, permit_withdrawn, permit_granted, permit_lost, link_conflict, loop_started, loop_stopped, bump_test_started, bump_test_done, bump_test_aborted, link_down, link_up, service_started, service_stopped"},
-                        "detail": {"description": "JSON detail of the event."},
-                        "actor": {"type": "string", "description": "The token's name, or \"system\"."}
-                    }
-                }
-            }
+            "schemas": schemas()
         },
         "paths": {
             "/healthz": {"get": {"summary": "200 while the process runs", "responses": {"200": {"description": "Running.", "content": {"text/plain": {"schema": {"type": "string"}}}}}}},
@@ -224,7 +251,7 @@ pub fn document() -> Value {
                 "responses": read_errors(json!({
                     "200": {"description": "Samples.", "content": {
                         "application/json": {"schema": {"type": "array", "items": {"$ref": "#/components/schemas/Sample"}}},
-                        "text/csv": {"schema": {"type": "string", "description": "Header at,objective,state,<input>.applied,<input>.estimate,<input>.gradient,..."}}
+                        "text/csv": {"schema": {"type": "string", "description": "Header at,objective,state,<input>.applied,<input>.estimate,<input>.gradient,...; a stepwise loop's has a phase column after state (settling, averaging, or empty when the loop was not seeking)."}}
                     }},
                     "400": error_response("A malformed time, limit or format."),
                     "404": error_response("Unknown loop.")

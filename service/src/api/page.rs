@@ -17,11 +17,13 @@ pub async fn status_page(State(state): State<ApiState>, _: Reader) -> Html<Strin
     let mut rows = String::new();
     for handle in state.loops.iter() {
         let s = handle.status.borrow().clone();
+        // A stepwise loop's dwell phase, beside its state.
+        let dwell = s.dwell.as_ref().map_or_else(String::new, |d| format!(" ({})", escape(d.phase)));
         for (k, i) in s.inputs.iter().enumerate() {
             let loop_cells = if k == 0 {
                 let span = s.inputs.len();
                 format!(
-                    "<td rowspan=\"{span}\">{}</td><td rowspan=\"{span}\" class=\"{}\">{}</td><td rowspan=\"{span}\">{}</td><td rowspan=\"{span}\">{}</td>",
+                    "<td rowspan=\"{span}\">{}</td><td rowspan=\"{span}\" class=\"{}\">{}{dwell}</td><td rowspan=\"{span}\">{}</td><td rowspan=\"{span}\">{}</td>",
                     escape(&s.name),
                     escape(s.state),
                     escape(s.state),
@@ -31,8 +33,16 @@ pub async fn status_page(State(state): State<ApiState>, _: Reader) -> Html<Strin
             } else {
                 String::new()
             };
+            // Newton's curvature estimate, beside the gradient.
+            let curvature = i.curvature.map_or_else(String::new, |c| {
+                format!(
+                    " (curvature {}{})",
+                    num(Some(c.estimate)),
+                    if c.trusted { "" } else { ", untrusted" }
+                )
+            });
             rows.push_str(&format!(
-                "<tr>{loop_cells}<td>{}</td><td>{}</td><td>{}</td><td>{}</td><td>{} … {}</td><td>{}</td></tr>\n",
+                "<tr>{loop_cells}<td>{}</td><td>{}</td><td>{}</td><td>{}{curvature}</td><td>{} … {}</td><td>{}</td></tr>\n",
                 escape(&i.name),
                 num(Some(i.applied)),
                 num(Some(i.estimate)),
