@@ -7,6 +7,13 @@
 //! samples. Filtering the Hessian at `hessian_hz` and solving against it each tick gives
 //! the Riccati solution exactly (`G(t) = 1 / (H + (1/G0 - H) e^{-w_r t})` for a constant
 //! `H`) at any tick length, and never lets `G` overflow when the samples are noisy.
+//!
+//! Before that filter each Hessian sample is averaged over one common period of the
+//! dithers. Far from the optimum the gradient term of the objective leaves a ripple in
+//! `N y` at the dither frequency and its harmonics some `8 |e| / a` times the curvature
+//! (the error `e` in dither amplitudes `a`); a first-order filter slow enough to remove
+//! it would follow the plant too slowly, while the average over a whole period removes
+//! every harmonic of it exactly.
 
 use std::f64::consts::TAU;
 
@@ -157,6 +164,87 @@ fn solve(l: &[f64], n: usize, b: &[f64], x: &mut [f64]) {
     }
 }
 
+/// Longest common period, in ticks, that the Hessian samples are averaged over; beyond
+/// it they are averaged over the longest dither period (our choice: the ripple is then
+/// cancelled for that input and much reduced for the others).
+const MAX_COMMON_PERIOD_TICKS: u64 = 100_000;
+
+/// The moving average of `width` values over the last `len` ticks.
+#[derive(Debug, Clone)]
+struct PeriodAverage {
+    len: usize,
+    width: usize,
+    values: Vec<f64>,
+    sum: Vec<f64>,
+    mean: Vec<f64>,
+    next: usize,
+    full: bool,
+}
+
+impl PeriodAverage {
+    fn new(len: usize, width: usize) -> Self {
+        let len = len.max(1);
+        PeriodAverage {
+            len,
+            width,
+            values: vec![0.0; len * width],
+            sum: vec![0.0; width],
+            mean: vec![0.0; width],
+            next: 0,
+            full: false,
+        }
+    }
+
+    fn restart(&mut self) {
+        self.values.fill(0.0);
+        self.sum.fill(0.0);
+        self.next = 0;
+        self.full = false;
+    }
+
+    /// Adds a sample; the mean of the last `len` once that many have come.
+    fn push(&mut self, sample: &[f64]) -> Option<&[f64]> {
+        let row = &mut self.values[self.next * self.width..(self.next + 1) * self.width];
+        for ((old, new), sum) in row.iter_mut().zip(sample).zip(&mut self.sum) {
+            *sum += new - *old;
+            *old = *new;
+        }
+        self.next += 1;
+        if self.next == self.len {
+            self.next = 0;
+            self.full = true;
+            // Summed afresh once a period, so rounding never accumulates.
+            for (k, sum) in self.sum.iter_mut().enumerate() {
+                *sum = self.values.iter().skip(k).step_by(self.width).sum();
+            }
+        }
+        if !self.full {
+            return None;
+        }
+        for (mean, sum) in self.mean.iter_mut().zip(&self.sum) {
+            *mean = sum / self.len as f64;
+        }
+        Some(&self.mean)
+    }
+}
+
+/// One common period of the dithers in ticks (see [`MAX_COMMON_PERIOD_TICKS`]).
+fn common_period_ticks(periods_s: &[f64], tick_s: f64) -> usize {
+    fn gcd(a: u64, b: u64) -> u64 {
+        if b == 0 { a } else { gcd(b, a % b) }
+    }
+    let ticks: Vec<u64> = periods_s.iter().map(|p| (p / tick_s).round().max(1.0) as u64).collect();
+    let longest = ticks.iter().copied().max().unwrap_or(1);
+    let mut common = 1u64;
+    for &t in &ticks {
+        common = common / gcd(common, t) * t;
+        if common > MAX_COMMON_PERIOD_TICKS {
+            return longest as usize;
+        }
+    }
+    common as usize
+}
+
 #[derive(Debug, Clone)]
 struct Channel {
     amplitude: f64,
@@ -172,6 +260,7 @@ pub struct Newton {
     rate: f64,
     highpass: FirstOrder,
     channels: Vec<Channel>,
+    period_average: PeriodAverage,
     curvature: CurvatureFilter,
     /// Cholesky pivots below this mean the estimate is not trusted.
     min_pivot: f64,
@@ -202,6 +291,10 @@ impl Newton {
             rate: s.tick_s / s.time_constant_s,
             highpass: FirstOrder::highpass(s.highpass_hz, fs),
             channels,
+            period_average: PeriodAverage::new(
+                common_period_ticks(&s.inputs.iter().map(|i| i.period_s).collect::<Vec<_>>(), s.tick_s),
+                n * n,
+            ),
             curvature: CurvatureFilter::new(n, s.hessian_hz, s.tick_s, s.initial_curvature),
             min_pivot: TRUST_FRACTION * s.initial_curvature,
             amplitudes: s.inputs.iter().map(|i| i.amplitude).collect(),
@@ -231,7 +324,9 @@ impl Method for Newton {
                 *g = lp.filter(*g);
             }
         }
-        self.curvature.update(&self.hessian);
+        if let Some(averaged) = self.period_average.push(&self.hessian) {
+            self.curvature.update(averaged);
+        }
         let n = self.channels.len();
         let trusted = cholesky(self.curvature.estimate(), n, &mut self.factor, self.min_pivot).is_some();
         if trusted {
@@ -257,6 +352,7 @@ impl Method for Newton {
                 lp.restart();
             }
         }
+        self.period_average.restart();
         self.curvature.restart();
         let initial = self.curvature.initial;
         self.shown.fill(Curvature { estimate: initial, trusted: true });
@@ -295,6 +391,24 @@ mod tests {
         // By hand: x = A^-1 b = (1/11) [3 -1; -1 4] (1, 2) = (1/11, 7/11).
         assert!((x[0] - 1.0 / 11.0).abs() < 1e-15 && (x[1] - 7.0 / 11.0).abs() < 1e-15);
         assert!(cholesky(&[1.0, 2.0, 2.0, 1.0], 2, &mut l, 0.0).is_none(), "indefinite");
+    }
+
+    #[test]
+    fn the_common_period_is_the_least_common_multiple_in_ticks() {
+        assert_eq!(common_period_ticks(&[20.0, 14.0], 1.0), 140);
+        assert_eq!(common_period_ticks(&[120.0], 2.0), 60);
+        assert_eq!(common_period_ticks(&[997.0, 991.0, 983.0], 1.0), 997, "too long: the longest period");
+    }
+
+    #[test]
+    fn the_period_average_removes_a_ripple_at_the_dither_and_its_harmonics_exactly() {
+        let mut avg = PeriodAverage::new(20, 1);
+        let mut last = None;
+        for k in 0..1000 {
+            let phase = std::f64::consts::TAU * k as f64 / 20.0;
+            last = avg.push(&[4.0 + 640.0 * phase.sin() + 50.0 * (3.0 * phase).cos()]).map(|m| m[0]);
+        }
+        assert!((last.unwrap() - 4.0).abs() < 1e-9, "{last:?}");
     }
 
     fn newton(initial_curvature: f64) -> Newton {
