@@ -1,15 +1,36 @@
-//! Invariants of the core for any objective sequence and settings: the applied setpoint
-//! never leaves the bounds, the estimate never outruns the rate limit, and the same
-//! inputs give the same outputs bit for bit.
+//! Invariants of the core, for each method, for any objective sequence and settings: the
+//! applied setpoint never leaves the bounds, the estimate never outruns the rate limit,
+//! and the same inputs give the same outputs bit for bit.
 
 use proptest::prelude::*;
 use ridgeline::config::Range;
 use ridgeline::seek::guard::InputGuard;
-use ridgeline::seek::{Seeker, Sine, SineInput, SineSettings};
+use ridgeline::seek::{
+    Method, Newton, NewtonInput, NewtonSettings, Seeker, Sine, SineInput, SineSettings, Stepwise,
+    StepwiseSettings,
+};
+
+/// One of the methods, with settings drawn from the same random inputs.
+#[derive(Debug, Clone)]
+enum Settings {
+    Sine(SineSettings),
+    Newton(NewtonSettings),
+    Stepwise(StepwiseSettings),
+}
+
+impl Settings {
+    fn method(&self) -> Box<dyn Method> {
+        match self {
+            Settings::Sine(s) => Box::new(Sine::new(s)),
+            Settings::Newton(s) => Box::new(Newton::new(s)),
+            Settings::Stepwise(s) => Box::new(Stepwise::new(s)),
+        }
+    }
+}
 
 #[derive(Debug, Clone)]
 struct Case {
-    settings: SineSettings,
+    settings: Settings,
     guards: Vec<InputGuard>,
     start: Vec<f64>,
     objective: Vec<f64>,
@@ -36,26 +57,63 @@ fn case() -> impl Strategy<Value = Case> {
         prop::collection::vec(objective_value(), 1..400),
         prop::option::of((0usize..400, 0.0..1.0f64, 0.0..1.0f64)),
         -500.0..500.0f64,
+        (0..3u8, 1e-3..1e3f64, 2u64..60, 1u64..60),
     )
         .prop_map(
-            |(inputs, maximize, hp_fraction, phase_deg, lowpass_hz, objective, narrowing, start)| {
+            |(
+                inputs,
+                maximize,
+                hp_fraction,
+                phase_deg,
+                lowpass_hz,
+                objective,
+                narrowing,
+                start,
+                (kind, curvature, dwell_ticks, average_ticks),
+            )| {
                 let slowest = inputs.iter().map(|i| i.1).fold(0.0, f64::max);
-                let settings = SineSettings {
-                    tick_s: 1.0,
-                    sign: if maximize { 1.0 } else { -1.0 },
-                    highpass_hz: hp_fraction / slowest,
-                    lowpass_hz,
-                    phase_deg,
-                    inputs: inputs
-                        .iter()
-                        .map(|&(a, p, g, ..)| SineInput { amplitude: a, period_s: p, gain: g })
-                        .collect(),
+                let sign = if maximize { 1.0 } else { -1.0 };
+                let highpass_hz = hp_fraction / slowest;
+                let settings = match kind {
+                    0 => Settings::Sine(SineSettings {
+                        tick_s: 1.0,
+                        sign,
+                        highpass_hz,
+                        lowpass_hz,
+                        phase_deg,
+                        inputs: inputs
+                            .iter()
+                            .map(|&(a, p, g, ..)| SineInput { amplitude: a, period_s: p, gain: g })
+                            .collect(),
+                    }),
+                    1 => Settings::Newton(NewtonSettings {
+                        tick_s: 1.0,
+                        sign,
+                        highpass_hz,
+                        lowpass_hz,
+                        phase_deg,
+                        // The gain's range read as a time constant, 1e-4 to 1e3 ticks.
+                        time_constant_s: inputs[0].2,
+                        hessian_hz: 0.5 * highpass_hz,
+                        initial_curvature: curvature,
+                        inputs: inputs
+                            .iter()
+                            .map(|&(a, p, ..)| NewtonInput { amplitude: a, period_s: p })
+                            .collect(),
+                    }),
+                    _ => Settings::Stepwise(StepwiseSettings {
+                        sign,
+                        dwell_ticks,
+                        average_ticks,
+                        steps: inputs.iter().map(|i| i.0).collect(),
+                    }),
                 };
+                let dithered = !matches!(settings, Settings::Stepwise(_));
                 let guards: Vec<InputGuard> = inputs
                     .iter()
                     .map(|&(a, _, _, lo, width, step)| InputGuard {
                         bounds: Range { min: lo, max: lo + 2.0 * a + width },
-                        amplitude: a,
+                        amplitude: if dithered { a } else { 0.0 },
                         max_step: step,
                     })
                     .collect();
@@ -71,7 +129,7 @@ fn case() -> impl Strategy<Value = Case> {
 
 /// Runs a case and returns every tick's (estimate, applied) per input.
 fn run(case: &Case, mut check: impl FnMut(&Seeker, &[f64], &[InputGuard])) -> Vec<Vec<(f64, f64)>> {
-    let mut seeker = Seeker::new(Box::new(Sine::new(&case.settings)), &case.guards, &case.start);
+    let mut seeker = Seeker::new(case.settings.method(), &case.guards, &case.start);
     let mut guards = case.guards.clone();
     let mut out = Vec::new();
     for (n, &y) in case.objective.iter().enumerate() {
@@ -90,7 +148,7 @@ fn run(case: &Case, mut check: impl FnMut(&Seeker, &[f64], &[InputGuard])) -> Ve
 }
 
 proptest! {
-    #![proptest_config(ProptestConfig { cases: 500, ..ProptestConfig::default() })]
+    #![proptest_config(ProptestConfig { cases: 900, ..ProptestConfig::default() })]
 
     #[test]
     fn applied_setpoint_never_leaves_the_operating_bounds(case in case()) {

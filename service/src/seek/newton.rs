@@ -195,13 +195,6 @@ impl PeriodAverage {
         }
     }
 
-    fn restart(&mut self) {
-        self.values.fill(0.0);
-        self.sum.fill(0.0);
-        self.next = 0;
-        self.full = false;
-    }
-
     /// Adds a sample; the mean of the last `len` once that many have come.
     fn push(&mut self, sample: &[f64]) -> Option<&[f64]> {
         let row = &mut self.values[self.next * self.width..(self.next + 1) * self.width];
@@ -255,6 +248,7 @@ struct Channel {
 /// The Newton-based method of DESIGN.md §8 for any number of inputs.
 #[derive(Debug, Clone)]
 pub struct Newton {
+    settings: NewtonSettings,
     sign: f64,
     /// `tick_s / time_constant_s`.
     rate: f64,
@@ -287,6 +281,7 @@ impl Newton {
             })
             .collect();
         Newton {
+            settings: s.clone(),
             sign: s.sign,
             rate: s.tick_s / s.time_constant_s,
             highpass: FirstOrder::highpass(s.highpass_hz, fs),
@@ -346,16 +341,7 @@ impl Method for Newton {
     }
 
     fn restart(&mut self) {
-        self.highpass.restart();
-        for ch in &mut self.channels {
-            if let Some(lp) = &mut ch.lowpass {
-                lp.restart();
-            }
-        }
-        self.period_average.restart();
-        self.curvature.restart();
-        let initial = self.curvature.initial;
-        self.shown.fill(Curvature { estimate: initial, trusted: true });
+        *self = Newton::new(&self.settings);
     }
 
     fn detail(&self) -> Detail<'_> {

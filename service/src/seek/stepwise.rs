@@ -114,3 +114,47 @@ impl Method for Stepwise {
         })
     }
 }
+
+#[cfg(test)]
+mod tests {
+    use super::*;
+    use crate::seek::newton::{Newton, NewtonInput, NewtonSettings};
+
+    #[test]
+    fn restart_forgets_all_that_newton_and_stepwise_learned() {
+        let newton = || {
+            Newton::new(&NewtonSettings {
+                tick_s: 1.0,
+                sign: -1.0,
+                highpass_hz: 0.01,
+                lowpass_hz: Some(0.2),
+                phase_deg: 20.0,
+                time_constant_s: 300.0,
+                hessian_hz: 0.004,
+                initial_curvature: 2.0,
+                inputs: vec![
+                    NewtonInput { amplitude: 0.1, period_s: 20.0 },
+                    NewtonInput { amplitude: 0.2, period_s: 14.0 },
+                ],
+            })
+        };
+        let stepwise = || {
+            Stepwise::new(&StepwiseSettings {
+                sign: 1.0,
+                dwell_ticks: 7,
+                average_ticks: 3,
+                steps: vec![0.1, 0.2],
+            })
+        };
+        let methods: [(Box<dyn Method>, Box<dyn Method>); 2] =
+            [(Box::new(newton()), Box::new(newton())), (Box::new(stepwise()), Box::new(stepwise()))];
+        for (mut used, fresh) in methods {
+            let mut moves = [Move::default(); 2];
+            for tick in 0..500u64 {
+                used.step(tick, (tick as f64 * 0.37).sin() + 0.01 * tick as f64, &[], &mut moves);
+            }
+            used.restart();
+            assert_eq!(format!("{used:?}"), format!("{fresh:?}"));
+        }
+    }
+}
