@@ -82,7 +82,8 @@ pub enum Command {
         /// Simulated time, like 90s, 45m, 6h or 2d.
         #[arg(long, default_value = "6h", value_parser = parse_duration_s)]
         duration: f64,
-        /// Write an SVG picture of the run.
+        /// Write an SVG picture of the run; with --separately, one panel per input that
+        /// overlays every loop's estimate on the optimum.
         #[arg(long, value_name = "OUT.svg")]
         plot: Option<PathBuf>,
         /// Write DIR/<loop>.csv with every tick.
@@ -274,7 +275,12 @@ fn rehearse(
         print!("{}", outcome.report);
     }
     if let Some(path) = plot {
-        if let Err(e) = rehearse::plot::write_svg(path, &outcome.traces) {
+        let written = if separately {
+            rehearse::plot::write_comparison_svg(path, &outcome.traces)
+        } else {
+            rehearse::plot::write_svg(path, &outcome.traces)
+        };
+        if let Err(e) = written {
             eprintln!("{e:#}");
             return ExitCode::from(FAILED);
         }

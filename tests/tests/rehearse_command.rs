@@ -1,8 +1,9 @@
 //! `ridgeline rehearse`: the example converges, the same case gives the same numbers as
-//! driving the core directly, and faults are reported instead of written.
+//! driving the core directly, faults are reported instead of written, and loops rehearsed
+//! separately are compared in the report and in one plot.
 
 use ridgeline::config::Range;
-use ridgeline_tests::{ridgeline, write_file};
+use ridgeline_tests::{python_json, ridgeline, write_file};
 
 use crate::check_command::{config, root};
 use crate::drive::{decay_time_constant, input, run, seeker, settings};
@@ -247,4 +248,47 @@ fn separately_each_loop_gets_its_own_plant_and_the_report_compares_them() {
         "{}",
         text.stdout
     );
+}
+
+#[test]
+fn separately_one_plot_overlays_the_loops_estimates_and_its_legend_names_each_loop_and_method() {
+    let dir = tempfile::tempdir().unwrap();
+    // The classic loop and a Newton loop, each on its own copy of the classic plant.
+    let base = config(&[]);
+    let first = &base[base.find("[[loops]]").expect("a loop")..];
+    let newton = first
+        .replace("name = \"test-loop\"", "name = \"test-loop-newton\"")
+        .replace("tick_s = 1.0", "tick_s = 1.0\nmethod = \"newton\"")
+        .replace(
+            "[loops.watchdog]",
+            "[loops.newton]\ntime_constant_s = 600\nhessian_hz = 0.002\ninitial_curvature = 4\n\n[loops.watchdog]",
+        )
+        .replace("gain = 0.00125", "");
+    let cfg = write_file(dir.path(), "methods.toml", &format!("{base}\n{newton}"));
+    let plant = write_file(dir.path(), "classic-plant.toml", CLASSIC_PLANT);
+    let svg = dir.path().join("compare.svg");
+    let run = rehearse(
+        cfg.to_str().unwrap(),
+        plant.to_str().unwrap(),
+        &["--duration", "6000s", "--separately", "--plot", svg.to_str().unwrap()],
+    );
+    assert_eq!(run.code, Some(0), "{}", run.stderr);
+
+    // Source: reference library Python xml.etree.ElementTree, which refuses XML that is not well-formed.
+    let parsed = python_json(&format!(
+        "import json, xml.etree.ElementTree as ET\nroot = ET.parse({path:?}).getroot()\n\
+         texts = [''.join(t.itertext()).strip() for t in root.iter('{{http://www.w3.org/2000/svg}}text')]\n\
+         print(json.dumps({{'root': root.tag, 'texts': texts}}))",
+        path = svg.display().to_string()
+    ));
+    assert_eq!(parsed["root"], "{http://www.w3.org/2000/svg}svg");
+    let texts: Vec<&str> =
+        parsed["texts"].as_array().expect("a list").iter().filter_map(|t| t.as_str()).collect();
+    // One panel, for the input both loops drive, instead of a column of panels per loop.
+    let titles: Vec<&str> = texts.iter().copied().filter(|t| t.ends_with("estimate per loop")).collect();
+    assert_eq!(titles, ["u: estimate per loop"], "{texts:?}");
+    assert!(!texts.iter().any(|t| t.contains("(maximize)")), "{texts:?}");
+    for entry in ["test-loop (sine)", "test-loop-newton (newton)", "optimum"] {
+        assert_eq!(texts.iter().filter(|t| **t == entry).count(), 1, "legend entry `{entry}` in {texts:?}");
+    }
 }

@@ -233,13 +233,13 @@ impl LoopRun {
         let achieved = self.truth.delivered(plant);
 
         // An optimum within a dither amplitude of a bound counts as reached when the
-        // estimate is as close to it as the dither lets it be. A stepwise input steps
-        // around the grid point nearest the optimum (within half a step of it), so it is
-        // settled within one and a half steps.
+        // estimate is as close to it as the dither lets it be. A stepwise input cycles a
+        // step either side of a level of its grid, which trails a moving optimum by up to
+        // a step: it counts as settled within two steps.
         let settled =
             self.control.inputs().iter().zip(&self.optimum).zip(&self.config.inputs).all(|((i, &x), c)| {
                 let (lo, hi) = i.guard.estimate_range();
-                let within = (SETTLED_FRACTION * i.guard.bounds.span()).max(1.5 * c.step.unwrap_or(0.0));
+                let within = (SETTLED_FRACTION * i.guard.bounds.span()).max(2.0 * c.step.unwrap_or(0.0));
                 (i.estimate - x.max(lo).min(hi)).abs() <= within
             });
         self.stats.note_settled(t, settled);
@@ -488,6 +488,7 @@ fn empty_trace(config: &LoopConfig) -> LoopTrace {
         name: config.name.clone(),
         objective: config.objective.to_string(),
         direction: config.direction.as_str(),
+        method: config.method.kind().as_str(),
         t_s: Vec::new(),
         objective_values: Vec::new(),
         best_objective: Vec::new(),

@@ -1,4 +1,5 @@
 //! SVG picture of a rehearsal: objective and best achievable objective, and per input the applied setpoint, estimate and optimum.
+//! Loops rehearsed side by side get a comparison instead: per input, every loop's estimate on the optimum.
 //!
 //! Rendering goes through `plotters` with only its SVG backend: text is emitted as
 //! `<text>` elements and sized by the browser, so no font library is needed. The
@@ -9,6 +10,7 @@ use std::path::Path;
 
 use anyhow::anyhow;
 use plotters::coord::Shift;
+use plotters::element::DashedPathElement;
 use plotters::prelude::*;
 use plotters::style::text_anchor::{HPos, Pos, VPos};
 
@@ -20,6 +22,8 @@ pub struct LoopTrace {
     pub objective: String,
     /// "maximize" or "minimize", shown in the panel title.
     pub direction: &'static str,
+    /// Seeking method, e.g. "newton"; names the loop in a comparison's legend.
+    pub method: &'static str,
     /// Simulated time of each tick, seconds, increasing.
     pub t_s: Vec<f64>,
     /// Measured objective per tick; NaN where it was not finite (drawn as a gap).
@@ -46,6 +50,8 @@ const WIDTH: u32 = 1200;
 const OBJECTIVE_PANEL_HEIGHT: u32 = 300;
 const INPUT_PANEL_HEIGHT: u32 = 220;
 const HEADER_HEIGHT: u32 = 30;
+/// Each further row of a legend too wide for the header's first row.
+const LEGEND_ROW_HEIGHT: u32 = 18;
 const Y_LABEL_AREA: u32 = 90;
 const X_LABEL_AREA: u32 = 45;
 const RIGHT_MARGIN: u32 = 20;
@@ -68,18 +74,84 @@ const SUBTITLE_COLOUR: RGBColor = RGBColor(70, 70, 70);
 const GRID_LIGHT: RGBColor = RGBColor(242, 242, 242);
 const GRID_BOLD: RGBColor = RGBColor(215, 215, 215);
 
+// A comparison tells its loops apart by colour and by dash pattern, so it also reads in
+// grey print and for colour-blind readers. The colours are dark and steer clear of the
+// optimum's orange; the two cycles have different lengths, so the first twelve loops
+// each get a combination of their own.
+const LOOP_COLOURS: [RGBColor; 6] = [
+    ESTIMATE_COLOUR,
+    RGBColor(0, 140, 100),
+    RGBColor(180, 60, 140),
+    RGBColor(40, 40, 40),
+    RGBColor(0, 150, 210),
+    RGBColor(120, 80, 200),
+];
+/// Dash and gap lengths in pixels; `None` is a solid line.
+const LOOP_DASHES: [Option<(u32, u32)>; 4] = [None, Some((12, 5)), Some((2, 4)), Some((6, 12))];
+
 /// Writes one SVG with a column of panels: for each loop its objective panel, then one panel per input.
 pub fn write_svg(path: &Path, loops: &[LoopTrace]) -> anyhow::Result<()> {
-    let svg = render(loops).map_err(|e| anyhow!("could not write plot to {}: {e}", path.display()))?;
+    write(path, loops.iter().flat_map(loop_panels).collect())
+}
+
+/// Writes one SVG that compares loops, each rehearsed against its own copy of the plant:
+/// one panel per input name, in which every loop with that input draws its estimate in
+/// its own colour and dash pattern over the optimum.
+pub fn write_comparison_svg(path: &Path, loops: &[LoopTrace]) -> anyhow::Result<()> {
+    write(path, comparison_panels(loops))
+}
+
+fn write(path: &Path, panels: Vec<Panel>) -> anyhow::Result<()> {
+    let svg = render(panels).map_err(|e| anyhow!("could not write plot to {}: {e}", path.display()))?;
     std::fs::write(path, svg).map_err(|e| anyhow!("could not write plot to {}: {e}", path.display()))
 }
 
 struct Series {
-    label: &'static str,
+    label: String,
     colour: RGBColor,
     width: u32,
+    /// Dash and gap lengths in pixels; `None` is a solid line.
+    dash: Option<(u32, u32)>,
     /// Points in time order, time already in the axis unit; a NaN `y` breaks the line.
     points: Vec<(f64, f64)>,
+}
+
+impl Series {
+    /// `y` against `t`, decimated, with time in the axis unit.
+    fn new(
+        label: impl Into<String>,
+        colour: RGBColor,
+        width: u32,
+        t: &[f64],
+        y: &[f64],
+        unit_s: f64,
+    ) -> Self {
+        let n = t.len().min(y.len());
+        Series {
+            label: label.into(),
+            colour,
+            width,
+            dash: None,
+            points: decimate(&t[..n], &y[..n], MAX_POINTS)
+                .into_iter()
+                .map(|(x, y)| (x / unit_s, y))
+                .collect(),
+        }
+    }
+
+    fn dashed(self, dash: Option<(u32, u32)>) -> Self {
+        Series { dash, ..self }
+    }
+
+    /// Bit for bit, so that gaps (NaN) compare equal too.
+    fn same_line_as(&self, other: &Series) -> bool {
+        self.points.len() == other.points.len()
+            && self
+                .points
+                .iter()
+                .zip(&other.points)
+                .all(|(a, b)| a.0.to_bits() == b.0.to_bits() && a.1.to_bits() == b.1.to_bits())
+    }
 }
 
 struct Panel {
@@ -95,11 +167,7 @@ struct Panel {
 
 type DrawResult<T> = Result<T, DrawingAreaErrorKind<std::io::Error>>;
 
-fn render(loops: &[LoopTrace]) -> DrawResult<String> {
-    let mut panels = Vec::new();
-    for lp in loops {
-        panels.extend(loop_panels(lp));
-    }
+fn render(mut panels: Vec<Panel>) -> DrawResult<String> {
     if panels.is_empty() {
         panels.push(Panel {
             title: "rehearsal".to_string(),
@@ -111,22 +179,23 @@ fn render(loops: &[LoopTrace]) -> DrawResult<String> {
         });
     }
 
-    let height: u32 = panels.iter().map(panel_height).sum();
+    let legends = panels.iter().map(legend_layout).collect::<DrawResult<Vec<_>>>()?;
+    let heights: Vec<u32> = panels.iter().zip(&legends).map(|(p, l)| panel_height(p, l)).collect();
     let mut svg = String::new();
     {
-        let root = SVGBackend::with_string(&mut svg, (WIDTH, height)).into_drawing_area();
+        let root = SVGBackend::with_string(&mut svg, (WIDTH, heights.iter().sum())).into_drawing_area();
         root.fill(&WHITE)?;
         let mut rest = root.clone();
-        for (i, panel) in panels.iter().enumerate() {
-            let (area, below) = rest.split_vertically(panel_height(panel));
+        for (i, (panel, legend)) in panels.iter().zip(&legends).enumerate() {
+            let (area, below) = rest.split_vertically(heights[i]);
             if i > 0 && !panel.is_subpanel {
-                // Marks where the next loop starts in a long column of panels.
+                // Marks where the next loop (in a comparison: input) starts in a long column.
                 area.draw(&PathElement::new(
                     vec![(0, 1), (WIDTH as i32, 1)],
                     ShapeStyle::from(&GRID_BOLD).stroke_width(2),
                 ))?;
             }
-            draw_panel(&area, panel)?;
+            draw_panel(&area, panel, legend)?;
             rest = below;
         }
         root.present()?;
@@ -134,37 +203,35 @@ fn render(loops: &[LoopTrace]) -> DrawResult<String> {
     Ok(svg)
 }
 
-fn panel_height(panel: &Panel) -> u32 {
-    if panel.is_subpanel { INPUT_PANEL_HEIGHT } else { OBJECTIVE_PANEL_HEIGHT }
+fn panel_height(panel: &Panel, legend: &Legend) -> u32 {
+    let height = if panel.is_subpanel { INPUT_PANEL_HEIGHT } else { OBJECTIVE_PANEL_HEIGHT };
+    height + legend.extra_rows * LEGEND_ROW_HEIGHT
 }
 
-fn loop_panels(lp: &LoopTrace) -> Vec<Panel> {
-    // Vectors are specified to be equally long; trusting only the shortest keeps a
-    // caller bug from turning into an out-of-bounds panic.
+/// Ticks every series of the loop has. Vectors are specified to be equally long;
+/// trusting only the shortest keeps a caller bug from turning into an out-of-bounds panic.
+fn common_len(lp: &LoopTrace) -> usize {
     let mut n = lp.t_s.len().min(lp.objective_values.len()).min(lp.best_objective.len());
     for input in &lp.inputs {
         n = n.min(input.applied.len()).min(input.estimate.len()).min(input.optimum.len());
     }
+    n
+}
+
+fn loop_panels(lp: &LoopTrace) -> Vec<Panel> {
+    let n = common_len(lp);
     let t = &lp.t_s[..n];
     let time = TimeAxis::new(t);
     let has_data = time.is_some();
-    let (unit_s, x_desc, x_range) = match &time {
-        Some(axis) => (axis.unit_s, axis.desc(), axis.range),
-        None => (1.0, "time [s]".to_string(), (0.0, 1.0)),
-    };
-    let make = |label, colour, width, y: &[f64]| Series {
-        label,
-        colour,
-        width,
-        points: decimate(t, &y[..n], MAX_POINTS).into_iter().map(|(x, y)| (x / unit_s, y)).collect(),
-    };
+    let time = time.unwrap_or(TimeAxis::PLACEHOLDER);
+    let make = |label, colour, width, y: &[f64]| Series::new(label, colour, width, t, &y[..n], time.unit_s);
 
     let mut panels = vec![Panel {
         title: format!("{} ({})", lp.name, lp.direction),
         is_subpanel: false,
         y_desc: lp.objective.clone(),
-        x_desc: x_desc.clone(),
-        x_range,
+        x_desc: time.desc(),
+        x_range: time.range,
         series: has_data.then(|| {
             vec![
                 make("objective", OBJECTIVE_COLOUR, 1, &lp.objective_values),
@@ -177,8 +244,8 @@ fn loop_panels(lp: &LoopTrace) -> Vec<Panel> {
             title: format!("{}: {}", lp.name, input.name),
             is_subpanel: true,
             y_desc: input.name.clone(),
-            x_desc: x_desc.clone(),
-            x_range,
+            x_desc: time.desc(),
+            x_range: time.range,
             series: has_data.then(|| {
                 vec![
                     make("applied", APPLIED_COLOUR, 1, &input.applied),
@@ -193,6 +260,65 @@ fn loop_panels(lp: &LoopTrace) -> Vec<Panel> {
     panels
 }
 
+/// One panel per input name, in order of first appearance; a loop's colour and dash
+/// pattern follow from its place in `loops`, so it looks the same in every panel.
+fn comparison_panels(loops: &[LoopTrace]) -> Vec<Panel> {
+    let lens: Vec<usize> = loops.iter().map(common_len).collect();
+    let ticks: Vec<&[f64]> = loops.iter().zip(&lens).map(|(lp, &n)| &lp.t_s[..n]).collect();
+    // As in a single run, there is something to draw once some loop has a time axis;
+    // loops may tick at different rates, so the axis spans them all.
+    let has_data = ticks.iter().any(|t| TimeAxis::new(*t).is_some());
+    let time =
+        TimeAxis::new(ticks.iter().copied().flatten()).filter(|_| has_data).unwrap_or(TimeAxis::PLACEHOLDER);
+
+    let mut names: Vec<&str> = Vec::new();
+    for input in loops.iter().flat_map(|lp| &lp.inputs) {
+        if !names.contains(&input.name.as_str()) {
+            names.push(&input.name);
+        }
+    }
+    names
+        .into_iter()
+        .map(|name| {
+            let mut optima: Vec<(&str, Series)> = Vec::new();
+            let mut estimates = Vec::new();
+            for (k, ((lp, &n), &t)) in loops.iter().zip(&lens).zip(&ticks).enumerate() {
+                let Some(input) = lp.inputs.iter().find(|i| i.name == name) else {
+                    continue;
+                };
+                let (colour, dash) =
+                    (LOOP_COLOURS[k % LOOP_COLOURS.len()], LOOP_DASHES[k % LOOP_DASHES.len()]);
+                let label = if lp.method.is_empty() {
+                    lp.name.clone()
+                } else {
+                    format!("{} ({})", lp.name, lp.method)
+                };
+                estimates
+                    .push(Series::new(label, colour, 2, t, &input.estimate[..n], time.unit_s).dashed(dash));
+                let optimum = Series::new("optimum", OPTIMUM_COLOUR, 4, t, &input.optimum[..n], time.unit_s);
+                if !optima.iter().any(|(_, o)| o.same_line_as(&optimum)) {
+                    optima.push((&lp.name, optimum.dashed(dash)));
+                }
+            }
+            // Copies of one plant usually share the optimum: one line then. Optima that
+            // differ (other inputs held elsewhere, other ticks) each name their loop.
+            let shared = optima.len() == 1;
+            let optima = optima.into_iter().map(|(loop_name, o)| {
+                if shared { o.dashed(None) } else { Series { label: format!("optimum, {loop_name}"), ..o } }
+            });
+            Panel {
+                title: format!("{name}: estimate per loop"),
+                is_subpanel: false,
+                y_desc: name.to_string(),
+                x_desc: time.desc(),
+                x_range: time.range,
+                // Optima first: drawn wide and under the estimates, as in a single run.
+                series: has_data.then(|| optima.chain(estimates).collect()),
+            }
+        })
+        .collect()
+}
+
 struct TimeAxis {
     unit_s: f64,
     unit: &'static str,
@@ -200,10 +326,13 @@ struct TimeAxis {
 }
 
 impl TimeAxis {
+    /// The axis of a panel that says "no data".
+    const PLACEHOLDER: TimeAxis = TimeAxis { unit_s: 1.0, unit: "s", range: (0.0, 1.0) };
+
     /// `None` when fewer than two usable ticks exist: a single instant has no time axis.
-    fn new(t: &[f64]) -> Option<Self> {
+    fn new<'a>(t: impl IntoIterator<Item = &'a f64>) -> Option<Self> {
         let (lo, hi, count) = t
-            .iter()
+            .into_iter()
             .copied()
             .filter(|v| usable(*v))
             .fold((f64::INFINITY, f64::NEG_INFINITY, 0usize), |(lo, hi, count), v| {
@@ -389,25 +518,38 @@ fn text_style(size: u32, colour: &'static RGBColor) -> TextStyle<'static> {
     TextStyle::from((FONT, size).into_font()).color(colour)
 }
 
-fn draw_panel(area: &DrawingArea<SVGBackend<'_>, Shift>, panel: &Panel) -> DrawResult<()> {
-    let (title_size, title_colour) =
-        if panel.is_subpanel { (14, &SUBTITLE_COLOUR) } else { (17, &TITLE_COLOUR) };
+fn title_style(panel: &Panel) -> TextStyle<'static> {
+    if panel.is_subpanel { text_style(14, &SUBTITLE_COLOUR) } else { text_style(17, &TITLE_COLOUR) }
+}
+
+fn legend_style() -> TextStyle<'static> {
+    text_style(13, &BLACK)
+}
+
+/// Width plotters gives the text: without a font library it estimates it from the font
+/// size alone, so it can be known before there is an area to draw on.
+fn text_width(text: &str, style: &TextStyle<'_>) -> DrawResult<i32> {
+    let (w, _) = style.font.box_size(text).map_err(|_| DrawingAreaErrorKind::LayoutError)?;
+    Ok(w as i32)
+}
+
+fn draw_panel(area: &DrawingArea<SVGBackend<'_>, Shift>, panel: &Panel, legend: &Legend) -> DrawResult<()> {
     area.draw(&Text::new(
         panel.title.clone(),
         (Y_LABEL_AREA as i32, 8),
-        text_style(title_size, title_colour).pos(Pos::new(HPos::Left, VPos::Top)),
+        title_style(panel).pos(Pos::new(HPos::Left, VPos::Top)),
     ))?;
 
     let Some(series) = &panel.series else {
         return draw_no_data(area);
     };
 
-    draw_legend(area, series)?;
+    draw_legend(area, series, legend)?;
 
     let y = y_range(series.iter());
     let x = panel.x_range;
     let mut chart = ChartBuilder::on(area)
-        .margin_top(HEADER_HEIGHT)
+        .margin_top(HEADER_HEIGHT + legend.extra_rows * LEGEND_ROW_HEIGHT)
         .margin_right(RIGHT_MARGIN)
         .margin_bottom(4)
         .x_label_area_size(X_LABEL_AREA)
@@ -433,33 +575,115 @@ fn draw_panel(area: &DrawingArea<SVGBackend<'_>, Shift>, panel: &Panel) -> DrawR
     for s in series {
         let style = ShapeStyle::from(&s.colour).stroke_width(s.width);
         for run in segments(&s.points) {
-            if run.len() == 1 {
+            match (run.len(), s.dash) {
                 // An isolated tick between two gaps would be an invisible one-point line.
-                chart.draw_series(run.into_iter().map(|p| Circle::new(p, 1, style.filled())))?;
-            } else {
-                chart.draw_series(std::iter::once(PathElement::new(run, style)))?;
-            }
+                (1, _) => chart.draw_series(run.into_iter().map(|p| Circle::new(p, 1, style.filled())))?,
+                (_, None) => chart.draw_series(std::iter::once(PathElement::new(run, style)))?,
+                (_, Some((on, off))) => {
+                    chart.draw_series(std::iter::once(DashedPathElement::new(run, on, off, style)))?
+                }
+            };
         }
     }
     Ok(())
 }
 
-/// The legend sits in the header, right-aligned, so it never hides data.
-fn draw_legend(area: &DrawingArea<SVGBackend<'_>, Shift>, series: &[Series]) -> DrawResult<()> {
-    let style = text_style(13, &BLACK);
-    let y = 15;
-    let mut right = area.dim_in_pixel().0 as i32 - RIGHT_MARGIN as i32;
-    for s in series.iter().rev() {
-        let (text_w, _) = area.estimate_text_size(s.label, &style)?;
-        let text_x = right - text_w as i32;
-        area.draw(&Text::new(s.label, (text_x, y), style.pos(Pos::new(HPos::Left, VPos::Center))))?;
-        let line_end = text_x - 6;
-        let line_start = line_end - 24;
-        area.draw(&PathElement::new(
-            vec![(line_start, y), (line_end, y)],
-            ShapeStyle::from(&s.colour).stroke_width(s.width.max(2)),
+/// Where the legend goes: in the header, right-aligned, so it never hides data. Entries
+/// that would run into the title wrap onto further rows, in reading order.
+struct Legend {
+    /// One per series, in the panel's order.
+    entries: Vec<LegendEntry>,
+    /// Rows below the first; each makes the header taller.
+    extra_rows: u32,
+}
+
+/// Pixel positions in the panel: the sample line, the label, and the row's middle.
+struct LegendEntry {
+    line_start: i32,
+    line_end: i32,
+    text_x: i32,
+    y: i32,
+}
+
+const LEGEND_SAMPLE: i32 = 24;
+const LEGEND_LABEL_GAP: i32 = 6;
+const LEGEND_ENTRY_GAP: i32 = 18;
+const TITLE_LEGEND_GAP: i32 = 18;
+
+/// A dashed sample is long enough to show its pattern at least twice.
+fn sample_len(s: &Series) -> i32 {
+    match s.dash {
+        None => LEGEND_SAMPLE,
+        Some((on, off)) => LEGEND_SAMPLE.max((2 * (on + off) + on) as i32),
+    }
+}
+
+fn legend_layout(panel: &Panel) -> DrawResult<Legend> {
+    let Some(series) = &panel.series else {
+        return Ok(Legend { entries: Vec::new(), extra_rows: 0 });
+    };
+    let style = legend_style();
+    let text_widths = series.iter().map(|s| text_width(&s.label, &style)).collect::<DrawResult<Vec<_>>>()?;
+    let entry_width = |i: usize| sample_len(&series[i]) + LEGEND_LABEL_GAP + text_widths[i];
+    let right = (WIDTH - RIGHT_MARGIN) as i32;
+    let first_row_left =
+        Y_LABEL_AREA as i32 + text_width(&panel.title, &title_style(panel))? + TITLE_LEGEND_GAP;
+
+    // Rows of series indices, filled greedily in reading order; an entry wider than a
+    // whole row still gets a row of its own.
+    let mut rows: Vec<Vec<usize>> = Vec::new();
+    let mut used = 0;
+    for i in 0..series.len() {
+        let left = if rows.len() <= 1 { first_row_left } else { Y_LABEL_AREA as i32 };
+        let needed = used + LEGEND_ENTRY_GAP + entry_width(i);
+        match rows.last_mut() {
+            Some(row) if right - needed >= left => {
+                row.push(i);
+                used = needed;
+            }
+            _ => {
+                rows.push(vec![i]);
+                used = entry_width(i);
+            }
+        }
+    }
+
+    let mut entries: Vec<Option<LegendEntry>> = series.iter().map(|_| None).collect();
+    for (r, row) in rows.iter().enumerate() {
+        let y = 15 + r as i32 * LEGEND_ROW_HEIGHT as i32;
+        let mut right = right;
+        for &i in row.iter().rev() {
+            let text_x = right - text_widths[i];
+            let line_end = text_x - LEGEND_LABEL_GAP;
+            let line_start = line_end - sample_len(&series[i]);
+            entries[i] = Some(LegendEntry { line_start, line_end, text_x, y });
+            right = line_start - LEGEND_ENTRY_GAP;
+        }
+    }
+    let extra_rows = rows.len().saturating_sub(1) as u32;
+    Ok(Legend { entries: entries.into_iter().flatten().collect(), extra_rows })
+}
+
+fn draw_legend(
+    area: &DrawingArea<SVGBackend<'_>, Shift>,
+    series: &[Series],
+    legend: &Legend,
+) -> DrawResult<()> {
+    let style = legend_style();
+    // Right to left, the order it has always been drawn in, so a single run's file stays
+    // the same byte for byte.
+    for (s, e) in series.iter().zip(&legend.entries).rev() {
+        area.draw(&Text::new(
+            s.label.as_str(),
+            (e.text_x, e.y),
+            style.pos(Pos::new(HPos::Left, VPos::Center)),
         ))?;
-        right = line_start - 18;
+        let line = vec![(e.line_start, e.y), (e.line_end, e.y)];
+        let line_style = ShapeStyle::from(&s.colour).stroke_width(s.width.max(2));
+        match s.dash {
+            None => area.draw(&PathElement::new(line, line_style))?,
+            Some((on, off)) => area.draw(&DashedPathElement::new(line, on, off, line_style))?,
+        }
     }
     Ok(())
 }
@@ -487,8 +711,20 @@ mod tests {
     }
 
     fn render_to_string(loops: &[LoopTrace], name: &str) -> String {
+        written(write_svg, loops, name)
+    }
+
+    fn comparison_to_string(loops: &[LoopTrace], name: &str) -> String {
+        written(write_comparison_svg, loops, name)
+    }
+
+    fn written(
+        write: fn(&Path, &[LoopTrace]) -> anyhow::Result<()>,
+        loops: &[LoopTrace],
+        name: &str,
+    ) -> String {
         let path = scratch(name);
-        let result = write_svg(&path, loops);
+        let result = write(&path, loops);
         assert!(result.is_ok(), "write failed: {result:?}");
         let text = std::fs::read_to_string(&path).unwrap_or_default();
         let _ = std::fs::remove_file(&path);
@@ -521,6 +757,15 @@ mod tests {
             }
         }
         assert!(stack.is_empty(), "unclosed tags: {stack:?}");
+    }
+
+    /// Polylines drawn in this stroke colour (plotters writes it as upper-case hex).
+    fn polylines_in(svg: &str, colour: RGBColor) -> usize {
+        let stroke = format!("stroke=\"#{:02X}{:02X}{:02X}\"", colour.0, colour.1, colour.2);
+        svg.split("<polyline")
+            .skip(1)
+            .filter(|el| el.split("/>").next().is_some_and(|el| el.contains(&stroke)))
+            .count()
     }
 
     fn polyline_point_counts(svg: &str) -> Vec<usize> {
@@ -556,6 +801,7 @@ mod tests {
             name: "kiln-2-draft".to_string(),
             objective: "heat_rate / 1000 & <eff>".to_string(),
             direction: "maximize",
+            method: "sine",
             best_objective: vec![100.0; n],
             t_s,
             objective_values,
@@ -669,6 +915,111 @@ mod tests {
         let err = write_svg(path, &[example(10, 1.0)]).err().map(|e| e.to_string());
         let msg = err.unwrap_or_default();
         assert!(msg.starts_with("could not write plot to /nonexistent-dir-for-plot-test/out.svg: "), "{msg}");
+    }
+
+    /// The example loop under another name and method, its estimate `lag_s` behind.
+    fn contender(name: &str, method: &'static str, lag_s: f64) -> LoopTrace {
+        let mut lp = LoopTrace { name: name.to_string(), method, ..example(3000, 2.0) };
+        let input = &mut lp.inputs[0];
+        input.estimate =
+            lp.t_s.iter().zip(&input.optimum).map(|(t, o)| o - 15.0 * (-t / lag_s).exp()).collect();
+        lp
+    }
+
+    #[test]
+    fn a_comparison_overlays_every_loops_estimate_in_one_panel_per_input() {
+        let mut newton = contender("kiln-2-newton", "newton", 600.0);
+        let fan = InputTrace { name: "fan_pct".to_string(), ..newton.inputs[0].clone() };
+        newton.inputs.push(fan);
+        let svg = comparison_to_string(&[contender("kiln-2-sine", "sine", 3000.0), newton], "compare");
+        assert_plausible_svg(&svg);
+        for needle in [
+            "damper_pct: estimate per loop",
+            "fan_pct: estimate per loop",
+            "kiln-2-sine (sine)",
+            "kiln-2-newton (newton)",
+            "time [min]",
+        ] {
+            assert!(svg.contains(needle), "missing {needle}");
+        }
+        // Both loops share damper_pct, only the Newton loop has fan_pct.
+        assert_eq!(svg.matches("kiln-2-sine (sine)").count(), 1);
+        assert_eq!(svg.matches("kiln-2-newton (newton)").count(), 2);
+        // Copies of one plant share the optimum: one line and one legend entry per panel.
+        assert_eq!(svg.matches("\noptimum\n").count(), 2);
+        assert!(!svg.contains("applied") && !svg.contains("(maximize)"), "a comparison shows estimates only");
+    }
+
+    #[test]
+    fn each_loop_in_a_comparison_has_its_own_colour_and_dash_pattern() {
+        let loops = [
+            contender("a", "sine", 3000.0),
+            contender("b", "newton", 600.0),
+            contender("c", "stepwise", 1500.0),
+        ];
+        let svg = comparison_to_string(&loops, "dashes");
+        assert_plausible_svg(&svg);
+        // The first loop is solid: one line in the panel and one in the legend. Dashed
+        // loops are many short lines, each dash its own.
+        assert_eq!(polylines_in(&svg, LOOP_COLOURS[0]), 2);
+        assert!(polylines_in(&svg, LOOP_COLOURS[1]) > 20);
+        assert!(polylines_in(&svg, LOOP_COLOURS[2]) > 20);
+        let patterns: Vec<_> = (0..3).map(|k| LOOP_DASHES[k]).collect();
+        assert!(patterns[0] != patterns[1] && patterns[1] != patterns[2] && patterns[0] != patterns[2]);
+        // The shared optimum stays solid, as in a single run.
+        assert_eq!(polylines_in(&svg, OPTIMUM_COLOUR), 2);
+    }
+
+    #[test]
+    fn optima_that_differ_each_name_their_loop() {
+        let mut other = contender("b", "newton", 600.0);
+        other.inputs[0].optimum.iter_mut().for_each(|o| *o += 5.0);
+        let svg = comparison_to_string(&[contender("a", "sine", 3000.0), other], "optima");
+        assert_plausible_svg(&svg);
+        assert!(svg.contains("optimum, a") && svg.contains("optimum, b"));
+    }
+
+    #[test]
+    fn a_legend_too_wide_for_the_header_wraps_onto_rows_below_the_title() {
+        let loops: Vec<LoopTrace> = (0..8)
+            .map(|k| contender(&format!("kiln-2-draft-candidate-{k}"), "newton", 500.0 * f64::from(k + 1)))
+            .collect();
+        let panels = comparison_panels(&loops);
+        let legend = match legend_layout(&panels[0]) {
+            Ok(l) => l,
+            Err(e) => panic!("no layout: {e}"),
+        };
+        assert!(legend.extra_rows >= 2, "{} extra rows", legend.extra_rows);
+        assert_eq!(legend.entries.len(), 9);
+        let title_w = text_width(&panels[0].title, &title_style(&panels[0])).unwrap_or_default();
+        for e in &legend.entries {
+            assert!(e.line_start >= Y_LABEL_AREA as i32 && e.text_x < (WIDTH - RIGHT_MARGIN) as i32);
+            if e.y == legend.entries[0].y {
+                assert!(e.line_start > Y_LABEL_AREA as i32 + title_w, "runs into the title");
+            }
+        }
+        // Reading order: each entry is right of the one before, or on a lower row.
+        assert!(legend.entries.windows(2).all(|w| w[1].y > w[0].y || w[1].line_start > w[0].text_x));
+        let svg = comparison_to_string(&loops, "wrap");
+        assert_plausible_svg(&svg);
+        let height = OBJECTIVE_PANEL_HEIGHT + legend.extra_rows * LEGEND_ROW_HEIGHT;
+        assert!(svg.contains(&format!("height=\"{height}\"")), "the panel grows by the extra rows");
+    }
+
+    #[test]
+    fn a_comparison_without_data_says_so() {
+        let svg = comparison_to_string(
+            &[contender("a", "sine", 1.0), contender("b", "sine", 1.0)].map(|mut lp| {
+                lp.t_s.truncate(1);
+                lp
+            }),
+            "compare-tiny",
+        );
+        assert_plausible_svg(&svg);
+        assert!(svg.contains("no data") && svg.contains("damper_pct"));
+        let svg = comparison_to_string(&[], "compare-none");
+        assert_plausible_svg(&svg);
+        assert!(svg.contains("no data"));
     }
 
     #[test]
