@@ -190,3 +190,31 @@ fn newtons_time_constant_is_its_setting_whatever_the_curvature_while_the_sine_me
         steep[0]
     );
 }
+
+#[test]
+fn check_predicts_the_set_time_constant_for_a_newton_loop_whatever_the_curvature() {
+    let text = config(&[
+        ("tick_s = 1.0", "tick_s = 1.0\nmethod = \"newton\""),
+        (
+            "[loops.watchdog]",
+            "[loops.newton]\ntime_constant_s = 600\nhessian_hz = 0.005\n\n[loops.model]\ncurvature = 4.0\n\n[loops.watchdog]",
+        ),
+        ("gain = 0.00125\n", ""),
+    ]);
+    let dir = tempfile::tempdir().unwrap();
+    let path = write_file(dir.path(), "newton.toml", &text);
+    let run = ridgeline_tests::ridgeline(&["check", "--config", path.to_str().unwrap()]);
+    assert_eq!(run.code, Some(0), "{}", run.stderr);
+    assert!(run.stdout.contains("method newton"), "{}", run.stdout);
+    // The rehearsal above measured 617.9 s for this filter; check's averaged figure,
+    // 600 s times ReH(2f) / ReH(f), is within 1% of it.
+    let tau: f64 = run
+        .stdout
+        .split("predicted time constant ")
+        .nth(1)
+        .and_then(|rest| rest.split(' ').next())
+        .and_then(|n| n.parse().ok())
+        .unwrap_or_else(|| panic!("no prediction in:\n{}", run.stdout));
+    assert!((tau / 617.9 - 1.0).abs() < 0.01, "{}", run.stdout);
+    assert!(run.stdout.contains("whatever the curvature"), "{}", run.stdout);
+}

@@ -292,3 +292,31 @@ fn separately_one_plot_overlays_the_loops_estimates_and_its_legend_names_each_lo
         assert_eq!(texts.iter().filter(|t| **t == entry).count(), 1, "legend entry `{entry}` in {texts:?}");
     }
 }
+
+#[test]
+fn the_methods_example_rehearses_the_three_methods_side_by_side_as_the_readme_shows() {
+    let cfg = root().join("config/methods-example.toml");
+    let plant = root().join("config/rehearse-example-plant.toml");
+    let (cfg, plant) = (cfg.to_str().unwrap(), plant.to_str().unwrap());
+    let args = ["--duration", "6h", "--separately"];
+    let report = json(&rehearse(cfg, plant, &[&args[..], &["--json"]].concat()));
+    let rows = report["comparison"].as_array().expect("a comparison");
+    let methods: Vec<_> = rows.iter().map(|r| r["method"].as_str().unwrap_or("?")).collect();
+    assert_eq!(methods, ["sine", "newton", "stepwise"]);
+    assert!(rows.iter().all(|r| r["settle_time_s"].is_f64() && r["bound_hits"] == 0), "{rows:?}");
+
+    // The README's table is what the command prints.
+    let text = rehearse(cfg, plant, &args);
+    assert_eq!(text.code, Some(0), "{}", text.stderr);
+    let readme = std::fs::read_to_string(root().join("README.md")).expect("README");
+    let table: Vec<&str> = text.stdout.lines().skip_while(|l| !l.starts_with("side by side")).collect();
+    assert_eq!(table.len(), 5, "{}", text.stdout);
+    for line in table {
+        assert!(readme.contains(line), "the README lacks `{line}`");
+    }
+
+    // The three write one setpoint: a file for rehearsal only.
+    let checked = ridgeline(&["check", "--config", cfg]);
+    assert_eq!(checked.code, Some(2), "{}", checked.stdout);
+    assert!(checked.stderr.contains("already written by loops[0].inputs[0].write"), "{}", checked.stderr);
+}
