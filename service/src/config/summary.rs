@@ -41,9 +41,6 @@ pub struct DwellSummary {
     pub average_s: f64,
     /// `L + 3.91 T` of `[loops.model]`: the time to settle within 2%.
     pub settle_s: Option<f64>,
-    /// Mean loss of the steady three-level cycle per stepped input, `|J''| step^2 / 4`,
-    /// when the curvature is known.
-    pub cycle_loss: Option<f64>,
 }
 
 #[derive(Debug, Clone, PartialEq)]
@@ -251,11 +248,7 @@ fn stepped(l: &LoopConfig, s: &StepwiseConfig) -> (Vec<InputSummary>, Option<Dwe
             }
         })
         .collect();
-    let cycle_loss = l.curvature().map(|c| {
-        let step = l.inputs.first().and_then(|i| i.step).unwrap_or(0.0);
-        c * step * step / 4.0
-    });
-    (inputs, Some(DwellSummary { dwell_s: s.dwell_s, average_s: s.average_s, settle_s: settle, cycle_loss }))
+    (inputs, Some(DwellSummary { dwell_s: s.dwell_s, average_s: s.average_s, settle_s: settle }))
 }
 
 impl fmt::Display for LoopSummary {
@@ -282,6 +275,16 @@ impl fmt::Display for LoopSummary {
             }
             if let Some((step, ramp_s)) = i.step {
                 writeln!(f, "  input {}: step {step}, made in {ramp_s:.1} s at the rate limit", i.name)?;
+                if let Some(c) = self.curvature {
+                    // The steady three-level cycle's mean loss, c step^2 / 2 with |J''| = 2c.
+                    writeln!(
+                        f,
+                        "    steady cycle: a step either side of the optimum, one step every {} s; mean loss about \
+                         {:.4} (|d2J/du2| step^2 / 4)",
+                        self.dwell.map_or(0.0, |d| d.dwell_s),
+                        c * step * step / 4.0
+                    )?;
+                }
             }
             if let (Some(tau), Some(d)) = (i.time_constant_s, &i.dither) {
                 let because = match (self.method, self.curvature) {
@@ -299,14 +302,6 @@ impl fmt::Display for LoopSummary {
             for w in &i.warnings {
                 writeln!(f, "    warning: {w}")?;
             }
-        }
-        if let (Some(d), Some(loss)) = (&self.dwell, self.dwell.and_then(|d| d.cycle_loss)) {
-            writeln!(
-                f,
-                "  steady cycle: each input steps around its optimum by ±step; mean loss about {loss:.4} per input \
-                 (|d2J/du2| step^2 / 4), one step every {} s",
-                d.dwell_s
-            )?;
         }
         Ok(())
     }

@@ -113,7 +113,8 @@ impl CurvatureFilter {
     }
 
     /// `G = estimate^-1` at one entry, for one input (the Riccati filter's state).
-    pub fn inverse_diagonal(&self, i: usize) -> Option<f64> {
+    #[cfg(test)]
+    fn inverse_diagonal(&self, i: usize) -> Option<f64> {
         let mut l = vec![0.0; self.n * self.n];
         let mut x = vec![0.0; self.n];
         let mut e = vec![0.0; self.n];
@@ -249,7 +250,6 @@ struct Channel {
 #[derive(Debug, Clone)]
 pub struct Newton {
     settings: NewtonSettings,
-    sign: f64,
     /// `tick_s / time_constant_s`.
     rate: f64,
     highpass: FirstOrder,
@@ -282,7 +282,6 @@ impl Newton {
             .collect();
         Newton {
             settings: s.clone(),
-            sign: s.sign,
             rate: s.tick_s / s.time_constant_s,
             highpass: FirstOrder::highpass(s.highpass_hz, fs),
             channels,
@@ -306,7 +305,7 @@ impl Newton {
 impl Method for Newton {
     fn step(&mut self, tick: u64, objective: f64, _inputs: &[InputState], moves: &mut [Move]) {
         // Seek a minimum of `-sign J`: the Hessian there is positive definite.
-        let y = -self.sign * self.highpass.filter(objective);
+        let y = -self.settings.sign * self.highpass.filter(objective);
         let tick = i64::try_from(tick).unwrap_or(i64::MAX);
         for ((ch, sine), mv) in self.channels.iter().zip(&mut self.sines).zip(moves.iter_mut()) {
             let (reference, dither) = ch.wave.at(tick);
@@ -334,7 +333,7 @@ impl Method for Newton {
             }
         }
         for (i, mv) in moves.iter_mut().enumerate() {
-            mv.gradient = -self.sign * self.gradient[i];
+            mv.gradient = -self.settings.sign * self.gradient[i];
             mv.step = -self.rate * self.solved[i];
             self.shown[i] = Curvature { estimate: self.curvature.estimate()[i * n + i], trusted };
         }

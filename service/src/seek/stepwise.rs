@@ -71,7 +71,7 @@ impl Stepwise {
         if average.is_some() {
             self.previous = average;
         }
-        let next = self.stepped.map_or(0, |i| (i + 1) % n);
+        let next = self.stepped.map_or(0, |i| (i + 1) % n.max(1));
         if let Some(input) = inputs.get(next) {
             self.targets[next] = Some(input.estimate + self.directions[next] * self.settings.steps[next]);
         }
