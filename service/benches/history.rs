@@ -90,6 +90,7 @@ fn records(rows: usize) -> Vec<SampleRecord> {
             SampleRecord {
                 resumable: true,
                 phase: None,
+                constraints: Vec::new(),
                 tick: (k / LOOPS) as u64,
                 loop_name: names[k % LOOPS].clone(),
                 at_ms: start_ms + (k / LOOPS) as i64 * TICK_MS,

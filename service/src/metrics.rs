@@ -21,6 +21,8 @@ pub struct Metrics {
     pub estimate: GaugeVec,
     pub gradient: GaugeVec,
     pub loop_state: GaugeVec,
+    pub constraint_value: GaugeVec,
+    pub constraint_engaged: GaugeVec,
     pub fallbacks: IntCounterVec,
     pub link_errors: IntCounterVec,
     pub link_request_seconds: HistogramVec,
@@ -86,6 +88,16 @@ impl Metrics {
                 "ridgeline_loop_state",
                 "1 for the state each loop is in, 0 for the others.",
                 &["loop", "state"],
+            ),
+            constraint_value: gauge(
+                "ridgeline_constraint_value",
+                "Latest value of each loop constraint's expression.",
+                &["loop", "constraint"],
+            ),
+            constraint_engaged: gauge(
+                "ridgeline_constraint_engaged",
+                "1 while a constraint is engaged (past its limit, and not yet released), else 0.",
+                &["loop", "constraint"],
             ),
             fallbacks: counter(
                 "ridgeline_fallbacks_total",
@@ -157,6 +169,10 @@ impl Metrics {
                 for g in [&self.setpoint, &self.estimate, &self.gradient] {
                     g.with_label_values(&[&l.name, &i.name]);
                 }
+            }
+            for c in &l.constraints {
+                self.constraint_value.with_label_values(&[&l.name, &c.name]);
+                self.constraint_engaged.with_label_values(&[&l.name, &c.name]);
             }
         }
         for link in &config.links {

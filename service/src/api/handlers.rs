@@ -202,8 +202,12 @@ pub async fn samples(
 ) -> Result<Response, ApiError> {
     let handle = state.find(&name)?;
     let history = state.history.as_ref().ok_or_else(|| ApiError::Unavailable("no history is kept".into()))?;
-    // Only a stepwise loop has dwell phases: the other methods' samples keep their shape.
-    let phase = handle.config.method.kind() == MethodKind::Stepwise;
+    // Only a stepwise loop has dwell phases, and only a loop with constraints has their
+    // values: the other loops' samples keep their shape.
+    let shape = Shape {
+        phase: handle.config.method.kind() == MethodKind::Stepwise,
+        constraints: handle.config.constraints.iter().map(|c| c.name.clone()).collect(),
+    };
     let since = time_param("since", query.since.as_deref())?;
     let until = time_param("until", query.until.as_deref())?;
     let csv = match query.format.as_deref() {
@@ -218,13 +222,16 @@ pub async fn samples(
         let limit = limit_param(query.limit, SAMPLES_DEFAULT, SAMPLES_MAX_CSV)?;
         let inputs: Vec<String> = handle.config.inputs.iter().map(|i| i.name.clone()).collect();
         let mut header_line =
-            String::from(if phase { "at,objective,state,phase" } else { "at,objective,state" });
+            String::from(if shape.phase { "at,objective,state,phase" } else { "at,objective,state" });
         for i in &inputs {
             header_line.push_str(&format!(",{i}.applied,{i}.estimate,{i}.gradient"));
         }
+        for c in &shape.constraints {
+            header_line.push_str(&format!(",{c}.value"));
+        }
         header_line.push('\n');
         let rows = history.sample_stream(&name, since, until, limit).map(move |row| match row {
-            Ok(row) => Ok(csv_line(&row, &inputs, phase)),
+            Ok(row) => Ok(csv_line(&row, &inputs, &shape)),
             Err(e) => {
                 tracing::error!(error = %e, "history read failed during a CSV export");
                 Err(std::io::Error::other("history read failed"))
@@ -245,28 +252,48 @@ pub async fn samples(
     let limit = limit_param(query.limit, SAMPLES_DEFAULT, SAMPLES_MAX_JSON)?;
     let rows =
         history.samples(&name, since, until, limit).await.map_err(|e| ApiError::Internal(e.to_string()))?;
-    Ok(Json(rows.iter().map(|row| sample_json(row, phase)).collect::<Vec<_>>()).into_response())
+    Ok(Json(rows.iter().map(|row| sample_json(row, &shape)).collect::<Vec<_>>()).into_response())
 }
 
-/// A stored sample as JSON, with the dwell phase (or null) when `phase` (a stepwise
-/// loop); serde_json writes a value that is not finite as `null`.
-fn sample_json(row: &SampleRow, phase: bool) -> Value {
+/// What a loop's samples carry beyond the objective, state and inputs.
+struct Shape {
+    /// A stepwise loop's dwell phase.
+    phase: bool,
+    /// The loop's constraints, in config order.
+    constraints: Vec<String>,
+}
+
+/// The value stored for constraint `name` in `row`, if any.
+fn constraint_value(row: &SampleRow, name: &str) -> Option<f64> {
+    row.constraints.iter().find(|(n, _)| n == name).and_then(|(_, v)| *v)
+}
+
+/// A stored sample as JSON, with the dwell phase (or null) of a stepwise loop and the
+/// constraints' values of a loop with constraints; serde_json writes a value that is not
+/// finite as `null`.
+fn sample_json(row: &SampleRow, shape: &Shape) -> Value {
     let inputs: serde_json::Map<String, Value> =
         row.inputs.iter().map(|(name, values)| (name.clone(), json!(values))).collect();
     let mut sample =
         json!({"at": rfc3339(row.at_ms), "objective": row.objective, "state": row.state, "inputs": inputs});
-    if phase {
+    if shape.phase {
         sample["phase"] = json!(row.phase);
+    }
+    if !shape.constraints.is_empty() {
+        let values: serde_json::Map<String, Value> =
+            shape.constraints.iter().map(|c| (c.clone(), json!(constraint_value(row, c)))).collect();
+        sample["constraints"] = Value::Object(values);
     }
     sample
 }
 
-/// One CSV row with the loop's inputs in config order, and the dwell phase after the
-/// state when `phase` (a stepwise loop); missing or non-finite values are empty cells.
-fn csv_line(row: &SampleRow, inputs: &[String], phase: bool) -> String {
+/// One CSV row with the loop's inputs in config order, the dwell phase after the state
+/// for a stepwise loop, and each constraint's value after the inputs; missing or
+/// non-finite values are empty cells.
+fn csv_line(row: &SampleRow, inputs: &[String], shape: &Shape) -> String {
     let cell = |v: Option<f64>| v.filter(|x| x.is_finite()).map(|x| x.to_string()).unwrap_or_default();
     let mut line = format!("{},{},{}", rfc3339(row.at_ms), cell(row.objective), row.state);
-    if phase {
+    if shape.phase {
         line.push(',');
         line.push_str(row.phase.as_deref().unwrap_or_default());
     }
@@ -278,6 +305,10 @@ fn csv_line(row: &SampleRow, inputs: &[String], phase: bool) -> String {
             line.push(',');
             line.push_str(&cell(value));
         }
+    }
+    for c in &shape.constraints {
+        line.push(',');
+        line.push_str(&cell(constraint_value(row, c)));
     }
     line.push('\n');
     line

@@ -100,7 +100,21 @@ fn schemas() -> Value {
                 "ticks": {"type": "integer", "minimum": 0},
                 "skipped_ticks": {"type": "integer", "minimum": 0},
                 "inputs": {"type": "array", "items": {"$ref": "#/components/schemas/InputStatus"}},
+                "constraints": {"type": "array", "items": {"$ref": "#/components/schemas/ConstraintStatus"}, "description": "The loop's constraints in config order; empty for a loop without any."},
+                "penalized_objective": {"type": ["number", "null"], "description": "Loops with a penalty constraint only (omitted otherwise): the objective the core saw at the last tick, worsened by weight * excess^2 of each penalty constraint past its limit; null when the core did not step. `objective` stays the measured one."},
                 "dwell": {"$ref": "#/components/schemas/Dwell"}
+            }
+        },
+        "ConstraintStatus": {
+            "type": "object",
+            "required": ["name", "value", "limit", "side", "handling", "engaged"],
+            "properties": {
+                "name": {"type": "string"},
+                "value": {"type": ["number", "null"], "description": "The value at the last tick whose tags were read; null before, or when that read failed."},
+                "limit": {"type": "number"},
+                "side": {"enum": ["max", "min"], "description": "max: the value must stay at or below the limit; min: at or above."},
+                "handling": {"enum": ["back_off", "penalty"]},
+                "engaged": {"type": "boolean", "description": "True from the tick the value went past the limit until it has stayed inside (margin inside, for back_off) for one cycle of the method."}
             }
         },
         "ModeChange": {
@@ -155,7 +169,8 @@ fn schemas() -> Value {
                     "type": "object", "required": ["applied", "estimate", "gradient"],
                     "properties": {"applied": number_or_null, "estimate": number_or_null, "gradient": number_or_null}
                 }},
-                "phase": {"enum": ["settling", "averaging", null], "description": "Stepwise loops only (omitted for the other methods): the dwell phase at this tick; null when the loop was not seeking."}
+                "phase": {"enum": ["settling", "averaging", null], "description": "Stepwise loops only (omitted for the other methods): the dwell phase at this tick; null when the loop was not seeking."},
+                "constraints": {"type": "object", "additionalProperties": number_or_null, "description": "Loops with constraints only (omitted otherwise): each constraint's value at this tick, in config order; null when it was not known."}
             }
         },
         "Event": {
@@ -165,7 +180,7 @@ fn schemas() -> Value {
                 "id": {"type": "integer"},
                 "at": {"type": "string", "format": "date-time"},
                 "loop": {"type": ["string", "null"]},
-                "kind": {"type": "string", "description": "mode_changed, bounds_changed, tripped, recovered, permit_withdrawn, permit_granted, permit_lost, link_conflict, loop_started, loop_stopped, bump_test_started, bump_test_done, bump_test_aborted, link_down, link_up, service_started, service_stopped"},
+                "kind": {"type": "string", "description": "mode_changed, bounds_changed, tripped, recovered, permit_withdrawn, permit_granted, permit_lost, link_conflict, constraint_engaged, constraint_released, loop_started, loop_stopped, bump_test_started, bump_test_done, bump_test_aborted, link_down, link_up, service_started, service_stopped"},
                 "detail": {"description": "JSON detail of the event."},
                 "actor": {"type": "string", "description": "The token's name, or \"system\"."}
             }
@@ -251,7 +266,7 @@ pub fn document() -> Value {
                 "responses": read_errors(json!({
                     "200": {"description": "Samples.", "content": {
                         "application/json": {"schema": {"type": "array", "items": {"$ref": "#/components/schemas/Sample"}}},
-                        "text/csv": {"schema": {"type": "string", "description": "Header at,objective,state,<input>.applied,<input>.estimate,<input>.gradient,...; a stepwise loop's has a phase column after state (settling, averaging, or empty when the loop was not seeking)."}}
+                        "text/csv": {"schema": {"type": "string", "description": "Header at,objective,state,<input>.applied,<input>.estimate,<input>.gradient,...; a stepwise loop's has a phase column after state (settling, averaging, or empty when the loop was not seeking); a loop with constraints has a <constraint>.value column per constraint after the inputs."}}
                     }},
                     "400": error_response("A malformed time, limit or format."),
                     "404": error_response("Unknown loop.")

@@ -13,6 +13,25 @@ fn num(v: Option<f64>) -> String {
     v.filter(|x| x.is_finite()).map_or_else(|| "–".to_owned(), |x| format!("{x:.4}"))
 }
 
+/// Each constraint as `name value max 150 ENGAGED`, one per line; the word says it, not
+/// only the colour.
+fn constraints(list: &[crate::supervisor::status::ConstraintStatus]) -> String {
+    list.iter()
+        .map(|c| {
+            format!(
+                "<span class=\"{}\">{} {} {} {}{}</span>",
+                if c.engaged { "engaged" } else { "clear" },
+                escape(&c.name),
+                num(c.value),
+                c.side,
+                num(Some(c.limit)),
+                if c.engaged { " ENGAGED" } else { "" }
+            )
+        })
+        .collect::<Vec<_>>()
+        .join("<br>")
+}
+
 pub async fn status_page(State(state): State<ApiState>, _: Reader) -> Html<String> {
     let mut rows = String::new();
     for handle in state.loops.iter() {
@@ -23,12 +42,13 @@ pub async fn status_page(State(state): State<ApiState>, _: Reader) -> Html<Strin
             let loop_cells = if k == 0 {
                 let span = s.inputs.len();
                 format!(
-                    "<td rowspan=\"{span}\">{}</td><td rowspan=\"{span}\" class=\"{}\">{}{dwell}</td><td rowspan=\"{span}\">{}</td><td rowspan=\"{span}\">{}</td>",
+                    "<td rowspan=\"{span}\">{}</td><td rowspan=\"{span}\" class=\"{}\">{}{dwell}</td><td rowspan=\"{span}\">{}</td><td rowspan=\"{span}\">{}</td><td rowspan=\"{span}\">{}</td>",
                     escape(&s.name),
                     escape(s.state),
                     escape(s.state),
                     escape(s.mode),
-                    num(s.objective)
+                    num(s.objective),
+                    constraints(&s.constraints)
                 )
             } else {
                 String::new()
@@ -66,12 +86,13 @@ td:first-child {{ text-align: left; }}
 .fallback, .no_permit {{ background: #fdd; }}
 .testing {{ background: #ffd; }}
 .seeking {{ background: #dfd; }}
+.engaged {{ font-weight: bold; background: #fed; }}
 </style></head>
 <body>
 <h1>Ridgeline</h1>
 <p>Loops and their inputs; this page refreshes every 5 s. Machine-readable: <a href="/api/v1/loops">/api/v1/loops</a>, <a href="/metrics">/metrics</a>.</p>
 <table>
-<tr><th>loop</th><th>state</th><th>mode</th><th>objective</th><th>input</th><th>applied</th><th>estimate</th><th>gradient</th><th>bounds</th><th>safe</th></tr>
+<tr><th>loop</th><th>state</th><th>mode</th><th>objective</th><th>constraints</th><th>input</th><th>applied</th><th>estimate</th><th>gradient</th><th>bounds</th><th>safe</th></tr>
 {rows}</table>
 </body></html>
 "#

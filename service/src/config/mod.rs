@@ -201,6 +201,8 @@ pub struct LoopConfig {
     pub watchdog: Watchdog,
     pub heartbeat: Option<Heartbeat>,
     pub inputs: Vec<InputConfig>,
+    /// Limits on measured values the loop keeps to (`[[loops.constraints]]`).
+    pub constraints: Vec<ConstraintConfig>,
 }
 
 /// What is known of a loop's plant: a first-order lag with dead time (zero when not
@@ -233,6 +235,100 @@ impl LoopConfig {
         match &self.method {
             MethodConfig::Stepwise(s) => s.dwell_s,
             _ => self.inputs.iter().filter_map(|i| i.dither).map(|d| d.period_s).fold(0.0, f64::max),
+        }
+    }
+}
+
+/// A limit on a measured value that a loop keeps to (`[[loops.constraints]]`).
+#[derive(Debug, Clone)]
+pub struct ConstraintConfig {
+    pub name: String,
+    /// An expression over tags, like the objective.
+    pub value: Expr,
+    pub limit: Limit,
+    pub handling: Handling,
+}
+
+/// The side of a constraint that is allowed: at most `max`, or at least `min`.
+#[derive(Debug, Clone, Copy, PartialEq)]
+pub enum Limit {
+    Max(f64),
+    Min(f64),
+}
+
+impl Limit {
+    pub fn value(self) -> f64 {
+        match self {
+            Limit::Max(v) | Limit::Min(v) => v,
+        }
+    }
+
+    /// `max` or `min`, as in the config.
+    pub fn side(self) -> &'static str {
+        match self {
+            Limit::Max(_) => "max",
+            Limit::Min(_) => "min",
+        }
+    }
+
+    /// How far `v` lies past the limit: positive past it, zero on it, negative inside.
+    pub fn excess(self, v: f64) -> f64 {
+        match self {
+            Limit::Max(m) => v - m,
+            Limit::Min(m) => m - v,
+        }
+    }
+}
+
+impl std::fmt::Display for Limit {
+    fn fmt(&self, f: &mut std::fmt::Formatter<'_>) -> std::fmt::Result {
+        match self {
+            Limit::Max(v) => write!(f, "at most {}", show(*v)),
+            Limit::Min(v) => write!(f, "at least {}", show(*v)),
+        }
+    }
+}
+
+/// What a loop does about a constraint.
+#[derive(Debug, Clone, PartialEq)]
+pub enum Handling {
+    /// The objective the core sees is worsened by `weight * excess^2` past the limit.
+    Penalty { weight: f64 },
+    /// Past the limit the loop walks the inputs in `moves` at their rate limit, without
+    /// dither, until the value is `margin` inside the limit.
+    BackOff { moves: Vec<Relief>, margin: f64 },
+}
+
+impl Handling {
+    pub fn kind(&self) -> HandlingKind {
+        match self {
+            Handling::Penalty { .. } => HandlingKind::Penalty,
+            Handling::BackOff { .. } => HandlingKind::BackOff,
+        }
+    }
+}
+
+string_enum! {
+    pub enum HandlingKind { BackOff = "back_off", Penalty = "penalty" }
+}
+
+/// An input that relieves a back-off constraint, and which way.
+#[derive(Debug, Clone, PartialEq)]
+pub struct Relief {
+    pub input: String,
+    pub way: Way,
+}
+
+string_enum! {
+    pub enum Way { Up = "up", Down = "down" }
+}
+
+impl Way {
+    /// +1 for up, -1 for down.
+    pub fn sign(self) -> f64 {
+        match self {
+            Way::Up => 1.0,
+            Way::Down => -1.0,
         }
     }
 }
@@ -584,6 +680,7 @@ const LOOP_KEYS: &[&str] = &[
     "watchdog",
     "heartbeat",
     "inputs",
+    "constraints",
 ];
 
 fn read_loop(t: &Table) -> Option<LoopConfig> {
@@ -645,6 +742,7 @@ fn read_loop(t: &Table) -> Option<LoopConfig> {
         t.problem("a loop needs at least one [[loops.inputs]]");
     }
     let inputs: Vec<_> = inputs.iter().map(|i| read_input(i, kind?)).collect();
+    let constraints: Vec<_> = t.tables("constraints", CONSTRAINT_KEYS).iter().map(read_constraint).collect();
     Some(LoopConfig {
         name: t.req("name")?,
         objective: objective?,
@@ -658,7 +756,75 @@ fn read_loop(t: &Table) -> Option<LoopConfig> {
         watchdog: watchdog??,
         heartbeat: heartbeat.flatten(),
         inputs: inputs.into_iter().collect::<Option<_>>()?,
+        constraints: constraints.into_iter().collect::<Option<_>>()?,
     })
+}
+
+const CONSTRAINT_KEYS: &[&str] = &["name", "value", "min", "max", "handling", "move", "margin", "weight"];
+
+fn read_constraint(t: &Table) -> Option<ConstraintConfig> {
+    let name: Option<String> = t.req("name");
+    let value: Option<String> = t.req("value");
+    let value = value.and_then(|src| match Expr::parse(&src) {
+        Ok(e) => Some(e),
+        Err(e) => {
+            t.problem_at("value", format!("`{src}`: {e}"));
+            None
+        }
+    });
+    let (min, max): (Option<f64>, Option<f64>) = (t.opt("min"), t.opt("max"));
+    let limit = match (t.has("min"), t.has("max")) {
+        (true, true) => {
+            t.problem("give `min` or `max`, not both: a constraint with two sides is two constraints");
+            None
+        }
+        (false, false) => {
+            t.problem("missing `min` or `max`: the limit the value must keep to");
+            None
+        }
+        (true, false) => min.map(Limit::Min),
+        (false, true) => max.map(Limit::Max),
+    };
+    let kind: Option<HandlingKind> = t.req("handling");
+    let refuse = |key: &str, why: &str| {
+        if t.has(key) {
+            t.problem_at(
+                key,
+                format!("not used by handling = \"{}\": {why}", kind.map_or("", |k| k.as_str())),
+            );
+        }
+    };
+    let handling = match kind? {
+        HandlingKind::Penalty => {
+            refuse("move", "`move` and `margin` belong to handling = \"back_off\"");
+            refuse("margin", "`move` and `margin` belong to handling = \"back_off\"");
+            if !t.has("weight") {
+                t.problem(
+                    "handling = \"penalty\" needs `weight` (the objective is worsened by weight * excess^2)",
+                );
+            }
+            Handling::Penalty { weight: t.opt("weight")? }
+        }
+        HandlingKind::BackOff => {
+            refuse(
+                "weight",
+                "`weight` belongs to handling = \"penalty\"; back_off walks the inputs in `move`",
+            );
+            if !t.has("move") {
+                t.problem(
+                    "handling = \"back_off\" needs `move`, the inputs that relieve the constraint and which way, \
+                     like move = { o2_setpoint_pct = \"up\" }",
+                );
+            }
+            let moves: Vec<(String, Way)> = t.map("move")?;
+            if moves.is_empty() {
+                t.problem_at("move", "names no input: back_off needs at least one input to walk");
+            }
+            let moves = moves.into_iter().map(|(input, way)| Relief { input, way }).collect();
+            Handling::BackOff { moves, margin: t.or("margin", 0.0)? }
+        }
+    };
+    Some(ConstraintConfig { name: name?, value: value?, limit: limit?, handling })
 }
 
 const INPUT_KEYS: &[&str] = &[

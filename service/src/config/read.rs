@@ -274,6 +274,36 @@ impl<'a, 'i, 's> Table<'a, 'i, 's> {
         }
     }
 
+    /// A table of named values such as `move = { a = "up", b = "down" }`, in file order;
+    /// `None` when absent, not a table, or any value is unreadable (all recorded).
+    pub fn map<T: FromToml>(&self, key: &str) -> Option<Vec<(String, T)>> {
+        let value = self.get(key)?;
+        let path = self.child_path(key);
+        match value.get_ref() {
+            DeValue::Table(entries) => {
+                let read: Vec<Option<(String, T)>> = entries
+                    .iter()
+                    .map(|(key, item)| {
+                        let name: &str = key.get_ref();
+                        let child = format!("{path}.{name}");
+                        // Later rules about this entry (an unknown input) point at its name.
+                        self.problems.remember(&child, key.span());
+                        read_value(item, &child, self.problems).map(|v| (name.to_owned(), v))
+                    })
+                    .collect();
+                read.into_iter().collect()
+            }
+            other => {
+                self.problems.at_span(
+                    &path,
+                    value.span(),
+                    format!("expected a table, found {}", kind(other)),
+                );
+                None
+            }
+        }
+    }
+
     /// A table of named tables (`[key.name]`), in file order.
     pub fn named_tables(&self, key: &str, known: &[&str]) -> Vec<(String, Table<'a, 'i, 's>)> {
         let Some(value) = self.get(key) else { return Vec::new() };

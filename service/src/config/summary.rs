@@ -55,6 +55,10 @@ pub struct LoopSummary {
     pub with_dynamics: bool,
     pub dwell: Option<DwellSummary>,
     pub inputs: Vec<InputSummary>,
+    /// One sentence per constraint: what it limits and how the loop keeps to it.
+    pub constraints: Vec<String>,
+    /// How long a constraint's value must stay inside before it is released: one cycle.
+    pub release_after_s: f64,
 }
 
 /// Averaged convergence time constant of the error for `J = J* - c (u - u*)^2`, with
@@ -113,7 +117,25 @@ fn summarize_loop(l: &LoopConfig) -> LoopSummary {
         with_dynamics: dynamics.is_some(),
         dwell,
         inputs,
+        constraints: l.constraints.iter().map(describe_constraint).collect(),
+        release_after_s: l.cycle_s(),
     }
+}
+
+fn describe_constraint(c: &super::ConstraintConfig) -> String {
+    let how = match &c.handling {
+        super::Handling::Penalty { weight } => {
+            format!("penalty: the objective is worsened by {weight} x excess^2 past the limit")
+        }
+        super::Handling::BackOff { moves, margin } => {
+            let moves: Vec<String> = moves.iter().map(|m| format!("{} {}", m.input, m.way)).collect();
+            format!(
+                "back_off: past the limit, walks {} at the rate limit until {margin} inside",
+                moves.join(", ")
+            )
+        }
+    };
+    format!("constraint {}: {} {}; {how}", c.name, c.value.source(), c.limit)
 }
 
 /// An input of the sine or the Newton method.
@@ -302,6 +324,16 @@ impl fmt::Display for LoopSummary {
             for w in &i.warnings {
                 writeln!(f, "    warning: {w}")?;
             }
+        }
+        for c in &self.constraints {
+            writeln!(f, "  {c}")?;
+        }
+        if !self.constraints.is_empty() {
+            writeln!(
+                f,
+                "    a constraint is released once its value has stayed inside for {} s (one cycle of the method)",
+                self.release_after_s
+            )?;
         }
         Ok(())
     }

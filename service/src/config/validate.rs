@@ -6,7 +6,7 @@ use std::collections::{HashMap, HashSet};
 use super::read::Problems;
 use super::show;
 use super::{
-    Codec, Config, Filter, InputConfig, LinkKind, LoopConfig, MethodConfig, NewtonConfig, Recover,
+    Codec, Config, Filter, Handling, InputConfig, LinkKind, LoopConfig, MethodConfig, NewtonConfig, Recover,
     RegisterType, StepwiseConfig, TagSource,
 };
 
@@ -229,6 +229,73 @@ fn validate_loop(config: &Config, l: &LoopConfig, path: &str, p: &Problems) {
     }
     if tick_ok {
         check_dither_frequencies(l, path, p);
+    }
+    validate_constraints(config, l, path, p);
+}
+
+fn validate_constraints(config: &Config, l: &LoopConfig, path: &str, p: &Problems) {
+    let mut names = HashSet::new();
+    for (i, c) in l.constraints.iter().enumerate() {
+        let cpath = format!("{path}.constraints[{i}]");
+        if !is_identifier(&c.name) {
+            p.at(
+                &format!("{cpath}.name"),
+                format!("constraint name `{}` must match [a-z][a-z0-9_]*", c.name),
+            );
+        } else if !names.insert(c.name.as_str()) {
+            p.at(
+                &format!("{cpath}.name"),
+                format!("`{}` is the name of another constraint of this loop", c.name),
+            );
+        }
+        for (k, name) in c.value.names().iter().enumerate() {
+            let column = c.value.name_column(k);
+            match config.tag(name) {
+                None => p.at(
+                    &format!("{cpath}.value"),
+                    format!("`{name}` at column {column} is not a tag defined in [tags]"),
+                ),
+                Some(tag) if config.link(&tag.link).is_none() => p.at(
+                    &format!("{cpath}.value"),
+                    format!(
+                        "`{name}` at column {column} reads link `{}`, which is not in [links]: the loop cannot read it",
+                        tag.link
+                    ),
+                ),
+                Some(_) => {}
+            }
+        }
+        match &c.handling {
+            Handling::Penalty { weight } => {
+                if !(*weight > 0.0 && weight.is_finite()) {
+                    p.at(&format!("{cpath}.weight"), "must be greater than zero");
+                }
+            }
+            Handling::BackOff { moves, margin } => {
+                if *margin < 0.0 {
+                    p.at(
+                        &format!("{cpath}.margin"),
+                        format!(
+                            "must be zero or more, not {}: the value is released once this far inside the limit",
+                            show(*margin)
+                        ),
+                    );
+                }
+                for m in moves {
+                    if !l.inputs.iter().any(|input| input.name == m.input) {
+                        let known: Vec<&str> = l.inputs.iter().map(|i| i.name.as_str()).collect();
+                        p.at(
+                            &format!("{cpath}.move.{}", m.input),
+                            format!(
+                                "`{}` is not an input of this loop (its inputs: {})",
+                                m.input,
+                                known.join(", ")
+                            ),
+                        );
+                    }
+                }
+            }
+        }
     }
 }
 

@@ -76,6 +76,9 @@ pub struct SampleRecord {
     pub inputs: Vec<InputSample>,
     /// A stepwise loop's dwell phase (`settling` or `averaging`) while it seeks.
     pub phase: Option<&'static str>,
+    /// Each constraint's value in config order (NaN when not known); empty for a loop
+    /// without constraints.
+    pub constraints: Vec<(Arc<str>, f64)>,
     /// Whether the estimates were in force (the loop wrote this tick): only those are
     /// kept as the last estimates a restarted loop may resume from.
     pub resumable: bool,
@@ -112,6 +115,9 @@ pub struct SampleRow {
     pub inputs: Vec<(String, InputValues)>,
     /// A stepwise loop's dwell phase while it seeks.
     pub phase: Option<String>,
+    /// Each constraint's value, in the order stored (config order); empty for a loop
+    /// without constraints.
+    pub constraints: Vec<(String, Option<f64>)>,
 }
 
 /// One input's stored values; `None` where the value was not finite.
@@ -239,7 +245,7 @@ impl History {
         limit: u32,
     ) -> Result<Vec<SampleRow>, HistoryError> {
         let rows = sqlx::query(
-            "SELECT id, at_ms, objective, state, inputs, phase FROM samples
+            "SELECT id, at_ms, objective, state, inputs, phase, constraints FROM samples
              WHERE loop = ?1 AND at_ms >= ?2 AND at_ms < ?3 ORDER BY at_ms, id LIMIT ?4",
         )
         .bind(loop_name.to_owned())
@@ -278,7 +284,7 @@ impl History {
         stream::unfold(Some(start), |page| async move {
             let mut page = page.filter(|p| p.remaining > 0)?;
             let rows = sqlx::query(
-                "SELECT id, at_ms, objective, state, inputs, phase FROM samples
+                "SELECT id, at_ms, objective, state, inputs, phase, constraints FROM samples
                  WHERE loop = ?1 AND (at_ms, id) > (?2, ?3) AND at_ms < ?4 ORDER BY at_ms, id LIMIT ?5",
             )
             .bind(page.loop_name.clone())
@@ -460,9 +466,19 @@ fn reason(e: &sqlx::Error) -> String {
 fn sample_row(r: &SqliteRow, loop_name: &str) -> Result<(i64, SampleRow), HistoryError> {
     let (id, at_ms): (i64, i64) = (r.try_get(0)?, r.try_get(1)?);
     let inputs: &str = r.try_get(4)?;
-    let inputs = serde_json::from_str::<StoredInputs>(inputs).map_err(|e| {
+    let inputs = serde_json::from_str::<InOrder<InputValues>>(inputs).map_err(|e| {
         HistoryError::Corrupt(format!("the inputs of loop {loop_name}'s sample at {}: {e}", rfc3339(at_ms)))
     })?;
+    let constraints: Option<&str> = r.try_get(6)?;
+    let constraints = match constraints {
+        Some(text) => serde_json::from_str::<InOrder<Option<f64>>>(text).map_err(|e| {
+            HistoryError::Corrupt(format!(
+                "the constraints of loop {loop_name}'s sample at {}: {e}",
+                rfc3339(at_ms)
+            ))
+        })?,
+        None => InOrder(Vec::new()),
+    };
     Ok((
         id,
         SampleRow {
@@ -471,6 +487,7 @@ fn sample_row(r: &SqliteRow, loop_name: &str) -> Result<(i64, SampleRow), Histor
             state: r.try_get(3)?,
             inputs: inputs.0,
             phase: r.try_get(5)?,
+            constraints: constraints.0,
         },
     ))
 }
@@ -490,26 +507,27 @@ fn event_row(r: &SqliteRow) -> Result<EventRow, HistoryError> {
     Ok(EventRow { id, event })
 }
 
-/// The `inputs` column read straight into a list, keeping the stored order.
-struct StoredInputs(Vec<(String, InputValues)>);
+/// A JSON object column (`inputs`, `constraints`) read straight into a list, keeping
+/// the stored order.
+struct InOrder<T>(Vec<(String, T)>);
 
-impl<'de> Deserialize<'de> for StoredInputs {
+impl<'de, T: Deserialize<'de>> Deserialize<'de> for InOrder<T> {
     fn deserialize<D: Deserializer<'de>>(d: D) -> Result<Self, D::Error> {
-        struct InOrder;
-        impl<'de> Visitor<'de> for InOrder {
-            type Value = StoredInputs;
+        struct Entries<T>(std::marker::PhantomData<T>);
+        impl<'de, T: Deserialize<'de>> Visitor<'de> for Entries<T> {
+            type Value = InOrder<T>;
             fn expecting(&self, f: &mut fmt::Formatter) -> fmt::Result {
-                f.write_str("an object of inputs")
+                f.write_str("an object of named values")
             }
-            fn visit_map<A: MapAccess<'de>>(self, mut map: A) -> Result<StoredInputs, A::Error> {
-                let mut inputs = Vec::with_capacity(map.size_hint().unwrap_or(2));
+            fn visit_map<A: MapAccess<'de>>(self, mut map: A) -> Result<InOrder<T>, A::Error> {
+                let mut entries = Vec::with_capacity(map.size_hint().unwrap_or(2));
                 while let Some(entry) = map.next_entry()? {
-                    inputs.push(entry);
+                    entries.push(entry);
                 }
-                Ok(StoredInputs(inputs))
+                Ok(InOrder(entries))
             }
         }
-        d.deserialize_map(InOrder)
+        d.deserialize_map(Entries(std::marker::PhantomData))
     }
 }
 

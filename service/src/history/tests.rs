@@ -29,6 +29,7 @@ fn settings(queue_capacity: usize) -> WriterSettings {
 fn sample(loop_name: &str, at_ms: i64, inputs: &[(&str, f64, f64, f64)]) -> SampleRecord {
     SampleRecord {
         phase: None,
+        constraints: Vec::new(),
         resumable: true,
         loop_name: loop_name.into(),
         tick: at_ms.max(0) as u64,
@@ -581,7 +582,7 @@ fn inputs_are_written_as_compact_json_in_config_order() {
         text,
         r#"{"b \"quoted\"":{"applied":1.0,"estimate":0.30000000000000004,"gradient":-1e-300},"a":{"applied":null,"estimate":1e+21,"gradient":0.0}}"#
     );
-    let back: StoredInputs = serde_json::from_str(&text).unwrap();
+    let back: InOrder<InputValues> = serde_json::from_str(&text).unwrap();
     assert_eq!(back.0[0].0, "b \"quoted\"");
     assert_eq!(back.0[0].1.estimate, Some(0.1 + 0.2));
     assert_eq!(back.0[1].1.estimate, Some(1e21));

@@ -52,8 +52,8 @@ pub(super) const PRUNE_SQL: &str = "DELETE FROM samples WHERE id IN (
 /// undone alone): a failed row fails the whole transaction anyway, which rolls back.
 static INSERT_SAMPLES: LazyLock<Vec<String>> = LazyLock::new(|| {
     multi_row(
-        "INSERT OR FAIL INTO samples (loop, at_ms, objective, state, inputs, phase) VALUES ",
-        "(?, ?, ?, ?, ?, ?)",
+        "INSERT OR FAIL INTO samples (loop, at_ms, objective, state, inputs, phase, constraints) VALUES ",
+        "(?, ?, ?, ?, ?, ?, ?)",
         "",
     )
 });
@@ -572,7 +572,8 @@ fn insert_samples(
             .bind(s.objective.filter(|x| x.is_finite()))
             .bind(interned(states, s.state))
             .bind(inputs_json(&s.inputs))
-            .bind(s.phase);
+            .bind(s.phase)
+            .bind(constraints_json(&s.constraints));
     }
     query
 }
@@ -586,6 +587,17 @@ fn interned(states: &mut Vec<Arc<str>>, state: &'static str) -> Arc<str> {
             s
         }
     }
+}
+
+/// `{"<constraint>": value, ...}` in the given order (a value that is not finite as
+/// `null`); `None` for a loop without constraints.
+fn constraints_json(constraints: &[(Arc<str>, f64)]) -> Option<String> {
+    if constraints.is_empty() {
+        return None;
+    }
+    let map: serde_json::Map<String, serde_json::Value> =
+        constraints.iter().map(|(name, v)| (name.to_string(), serde_json::json!(v))).collect();
+    Some(serde_json::Value::Object(map).to_string())
 }
 
 /// `{"<input>": {"applied": .., "estimate": .., "gradient": ..}, ...}` in the given order;

@@ -24,7 +24,7 @@ use crate::seek::guard::ObjectiveFault;
 use crate::sim::{Plant, PlantSpec};
 use crate::supervisor::control::{Cause, Control, Permit, Reading, Transition};
 use plot::{InputTrace, LoopTrace};
-pub use report::{Event, FinalInput, LoopReport, Report, human_duration};
+pub use report::{ConstraintReport, Event, FinalInput, LoopReport, Report, human_duration};
 pub use truth::Truth;
 
 /// An estimate counts as settled within this fraction of its bounds span of the optimum.
@@ -75,6 +75,17 @@ struct LoopRun {
     tag_values: Vec<f64>,
     bounds: Vec<Range>,
     optimum: Vec<f64>,
+    /// Per constraint, in config order.
+    constraints: Vec<ConstraintStats>,
+}
+
+/// What one constraint did over a rehearsal, judged on the value the plant delivered
+/// without its noise.
+#[derive(Debug, Default)]
+struct ConstraintStats {
+    ticks_past: u64,
+    largest_excess: f64,
+    engagements: u64,
 }
 
 impl Rehearsal {
@@ -135,7 +146,8 @@ impl Rehearsal {
                 stats: Stats::default(),
                 csv: None,
                 trace: None,
-                tag_values: vec![0.0; l.objective.names().len()],
+                tag_values: vec![0.0; crate::supervisor::constraints::loop_tags(l).len()],
+                constraints: l.constraints.iter().map(|_| ConstraintStats::default()).collect(),
                 bounds: l.inputs.iter().map(|i| i.bounds).collect(),
                 optimum: vec![0.0; l.inputs.len()],
             });
@@ -184,7 +196,7 @@ impl Rehearsal {
                 csv.flush().context("could not finish writing a CSV file")?;
             }
             traces.extend(l.trace.take().map(TraceRecorder::finish));
-            loops.push(l.report());
+            loops.push(l.report(duration, self.plant.inputs()));
         }
         Ok(Outcome { report: Report { duration_s: duration, loops, comparison: None }, traces })
     }
@@ -221,6 +233,11 @@ impl LoopRun {
         for transition in self.control.take_transitions() {
             self.stats.transition(t, transition);
         }
+        for change in self.control.take_constraint_changes() {
+            let name = &self.config.constraints[change.constraint].name;
+            self.constraints[change.constraint].engagements += u64::from(change.engaged);
+            self.stats.constraint(t, change, name);
+        }
         self.stats.bound_hits += u64::from(report.guard.at_bound);
         self.stats.rate_limited_ticks += u64::from(report.guard.rate_limited);
 
@@ -231,6 +248,13 @@ impl LoopRun {
         let (best, optimum) = self.truth.optimum(t, plant.inputs(), &self.bounds);
         self.optimum.copy_from_slice(optimum);
         let achieved = self.truth.delivered(plant);
+        for (stats, view) in self.constraints.iter_mut().zip(self.truth.delivered_constraints()) {
+            let excess = view.value.map_or(0.0, |v| view.limit.excess(v));
+            if excess > 0.0 {
+                stats.ticks_past += 1;
+                stats.largest_excess = stats.largest_excess.max(excess);
+            }
+        }
 
         // An optimum within a dither amplitude of a bound counts as reached when the
         // estimate is as close to it as the dither lets it be. A stepwise input cycles a
@@ -257,6 +281,7 @@ impl LoopRun {
     fn record(&mut self, t: f64, measured: f64, best: f64) -> anyhow::Result<()> {
         if let Some(csv) = &mut self.csv {
             write_row(csv, t, measured, best, self.control.inputs(), &self.optimum)
+                .and_then(|()| write_constraints(csv, self.control.constraints().map(|c| c.value)))
                 .with_context(|| format!("could not write the CSV file of loop {}", self.config.name))?;
         }
         if let Some(trace) = &mut self.trace {
@@ -265,7 +290,14 @@ impl LoopRun {
         Ok(())
     }
 
-    fn report(&self) -> LoopReport {
+    /// The loop's report at the end of the run (plant time `t_s`, plant inputs as given).
+    fn report(&mut self, t_s: f64, plant_inputs: &[f64]) -> LoopReport {
+        // Where the loop would have gone without its constraints, for comparison.
+        let unconstrained = if self.truth.has_constraints() {
+            self.truth.unconstrained_optimum(t_s, plant_inputs, &self.bounds)
+        } else {
+            Vec::new()
+        };
         let s = &self.stats;
         let mean_loss = (s.scored_ticks > 0).then(|| s.loss_sum / s.scored_ticks as f64);
         let mean_best = s.best_sum / s.scored_ticks.max(1) as f64;
@@ -281,13 +313,34 @@ impl LoopRun {
             rate_limited_ticks: s.rate_limited_ticks,
             objective_faults: s.faults,
             events: s.events.clone(),
+            constraints: self
+                .config
+                .constraints
+                .iter()
+                .zip(&self.constraints)
+                .map(|(c, stats)| ConstraintReport {
+                    name: c.name.clone(),
+                    handling: c.handling.kind().as_str(),
+                    side: c.limit.side(),
+                    limit: c.limit.value(),
+                    fraction_past_limit: stats.ticks_past as f64 / s.ticks.max(1) as f64,
+                    largest_excess: stats.largest_excess,
+                    engagements: stats.engagements,
+                })
+                .collect(),
             inputs: self
                 .config
                 .inputs
                 .iter()
                 .zip(self.control.inputs())
                 .zip(&self.optimum)
-                .map(|((c, i), &x)| FinalInput { name: c.name.clone(), estimate: i.estimate, optimum: x })
+                .zip(unconstrained.iter().map(Some).chain(std::iter::repeat(None)))
+                .map(|(((c, i), &x), free)| FinalInput {
+                    name: c.name.clone(),
+                    estimate: i.estimate,
+                    optimum: x,
+                    unconstrained_optimum: free.copied(),
+                })
                 .collect(),
         }
     }
@@ -333,6 +386,18 @@ impl Stats {
         }
     }
 
+    fn constraint(&mut self, t: f64, change: crate::supervisor::constraints::Change, name: &str) {
+        if self.events.len() < EVENTS_KEPT {
+            let (kind, how) = if change.engaged {
+                ("constraint_engaged", "past")
+            } else {
+                ("constraint_released", "back inside")
+            };
+            let reason = format!("{name} {how} its limit {}", change.limit);
+            self.events.push(Event { t_s: t, kind, value: Some(change.value), reason: Some(reason) });
+        }
+    }
+
     fn fault(&mut self, t: f64, fault: ObjectiveFault, value: f64) {
         self.faults += 1;
         if self.events.len() < EVENTS_KEPT {
@@ -353,7 +418,21 @@ fn csv_header(config: &LoopConfig) -> String {
             header.push_str(&format!(",{}.{column}", input.name));
         }
     }
+    for c in &config.constraints {
+        header.push_str(&format!(",{}.value", c.name));
+    }
     header
+}
+
+/// Ends a CSV row with each constraint's value as the loop read it (empty when unknown).
+fn write_constraints(out: &mut impl Write, values: impl Iterator<Item = Option<f64>>) -> std::io::Result<()> {
+    for v in values {
+        match v.filter(|v| v.is_finite()) {
+            Some(v) => write!(out, ",{v}")?,
+            None => write!(out, ",")?,
+        }
+    }
+    writeln!(out)
 }
 
 fn open_csv(dir: &Path, config: &LoopConfig) -> anyhow::Result<BufWriter<File>> {
@@ -383,7 +462,7 @@ fn write_row(
     for (input, x) in inputs.iter().zip(optimum) {
         write!(out, ",{},{},{},{x}", input.applied, input.estimate, input.gradient)?;
     }
-    writeln!(out)
+    Ok(())
 }
 
 /// Records a loop's trace for the plot with bounded memory: every tick up to

@@ -71,17 +71,37 @@ pub struct LoopReport {
     /// Ticks whose objective was not finite or outside the plausible range; the core
     /// held its estimates and wrote them without dither.
     pub objective_faults: u64,
-    /// The first few such events.
+    /// The first few such events, and constraints engaged and released.
     pub events: Vec<Event>,
+    /// What each constraint did, in config order (empty for a loop without any).
+    pub constraints: Vec<ConstraintReport>,
     #[serde(rename = "final", serialize_with = "inputs_by_name")]
     pub inputs: Vec<FinalInput>,
+}
+
+/// What one constraint did over a rehearsal. "Past the limit" is judged on the value
+/// the plant delivered without its noise, after its lag and dead time.
+#[derive(Debug, Clone, Serialize)]
+pub struct ConstraintReport {
+    pub name: String,
+    pub handling: &'static str,
+    /// `max` or `min`.
+    pub side: &'static str,
+    pub limit: f64,
+    /// Ticks whose delivered value was past the limit, over all ticks.
+    pub fraction_past_limit: f64,
+    /// The largest distance past the limit (0 when never past it).
+    pub largest_excess: f64,
+    /// How many times the loop engaged the constraint.
+    pub engagements: u64,
 }
 
 #[derive(Debug, Clone, Serialize)]
 pub struct Event {
     pub t_s: f64,
-    /// `objective_not_finite`, `objective_out_of_range`, or a state change of the loop
-    /// (`tripped`, `recovered`).
+    /// `objective_not_finite`, `objective_out_of_range`, `constraint_not_finite`, a
+    /// state change of the loop (`tripped`, `recovered`), or `constraint_engaged` and
+    /// `constraint_released` (with the constraint's value).
     pub kind: &'static str,
     /// The objective's value, when it was a number.
     pub value: Option<f64>,
@@ -95,7 +115,11 @@ pub struct FinalInput {
     #[serde(skip)]
     pub name: String,
     pub estimate: f64,
+    /// The best point that respects every constraint.
     pub optimum: f64,
+    /// For a loop with constraints: the best point with the constraints ignored.
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub unconstrained_optimum: Option<f64>,
 }
 
 /// `final` is an object keyed by input name, in config order.
@@ -166,10 +190,35 @@ impl fmt::Display for LoopReport {
                 }
             }
         }
+        for c in &self.constraints {
+            writeln!(
+                f,
+                "  constraint {} ({}, {} {}): past the limit {:.2}% of ticks, at most by {}, engaged {} times",
+                c.name,
+                c.handling,
+                c.side,
+                c.limit,
+                100.0 * c.fraction_past_limit,
+                c.largest_excess,
+                c.engagements
+            )?;
+        }
         let width = self.inputs.iter().map(|i| i.name.len()).max().unwrap_or(0).max(5);
-        writeln!(f, "  {:width$}  {:>14}  {:>14}", "input", "final estimate", "optimum")?;
-        for i in &self.inputs {
-            writeln!(f, "  {:width$}  {:>14.6}  {:>14.6}", i.name, i.estimate, i.optimum)?;
+        if self.constraints.is_empty() {
+            writeln!(f, "  {:width$}  {:>14}  {:>14}", "input", "final estimate", "optimum")?;
+            for i in &self.inputs {
+                writeln!(f, "  {:width$}  {:>14.6}  {:>14.6}", i.name, i.estimate, i.optimum)?;
+            }
+        } else {
+            writeln!(
+                f,
+                "  {:width$}  {:>14}  {:>14}  {:>14}",
+                "input", "final estimate", "optimum", "unconstrained"
+            )?;
+            for i in &self.inputs {
+                let free = i.unconstrained_optimum.map_or_else(|| "n/a".to_owned(), |x| format!("{x:.6}"));
+                writeln!(f, "  {:width$}  {:>14.6}  {:>14.6}  {free:>14}", i.name, i.estimate, i.optimum)?;
+            }
         }
         Ok(())
     }
@@ -208,7 +257,13 @@ mod tests {
                 rate_limited_ticks: 2,
                 objective_faults: 0,
                 events: vec![],
-                inputs: vec![FinalInput { name: "u".into(), estimate: 1.0, optimum: 2.0 }],
+                constraints: vec![],
+                inputs: vec![FinalInput {
+                    name: "u".into(),
+                    estimate: 1.0,
+                    optimum: 2.0,
+                    unconstrained_optimum: None,
+                }],
             }],
             comparison: None,
         };

@@ -1,11 +1,13 @@
 //! The truth a loop is judged against: its objective on the plant model's noise-free
-//! static map, and the best value of it over the loop's operating bounds. Used by the
-//! rehearsal and by the demo's progress lines.
+//! static map, and the best value of it over the loop's operating bounds among the
+//! setpoints that respect every constraint. Used by the rehearsal and by the demo's
+//! progress lines.
 
 use crate::config::{Config, Direction, Problem, Range, RegisterSpace, TagSource};
 use crate::expr::Expr;
 use crate::seek::guard::check_objective;
 use crate::sim::{Plant, PlantSpec, StaticMap};
+use crate::supervisor::constraints::{Constraints, loop_tags};
 
 use super::optimum::OptimumTracker;
 
@@ -19,17 +21,20 @@ enum Source {
 /// One loop wired to a plant model.
 #[derive(Debug)]
 pub struct Truth {
+    /// +1 to maximize, -1 to minimize.
+    sign: f64,
     plausible: Option<Range>,
     tracker: OptimumTracker,
     map: LoopMap,
     optimum: Vec<f64>,
 }
 
-/// The loop's objective as a function of its setpoints on the static map.
+/// The loop's objective and constraints as functions of its setpoints on the static map.
 #[derive(Debug)]
 struct LoopMap {
     objective: Expr,
-    /// Plant source of each of the objective's names, in `Expr::names` order.
+    constraints: Constraints,
+    /// Plant source of each of the loop's tags, in [`loop_tags`] order (the objective's first).
     sources: Vec<Source>,
     /// Plant input index of each loop input.
     plant_inputs: Vec<usize>,
@@ -40,6 +45,7 @@ struct LoopMap {
 }
 
 impl LoopMap {
+    /// The objective at `setpoints` (the constraints' values follow in `constraints`).
     fn at(&mut self, setpoints: &[f64]) -> f64 {
         for (&pi, &v) in self.plant_inputs.iter().zip(setpoints) {
             self.point[pi] = v;
@@ -50,7 +56,14 @@ impl LoopMap {
                 Source::Input(i) => self.point[i],
             };
         }
-        self.objective.eval(&self.tag_values)
+        self.evaluate()
+    }
+
+    /// The objective from `tag_values`, and the constraints' values into `constraints`.
+    fn evaluate(&mut self) -> f64 {
+        self.constraints.evaluate(&self.tag_values);
+        let n = self.objective.names().len();
+        self.objective.eval(&self.tag_values[..n])
     }
 }
 
@@ -62,9 +75,7 @@ impl Truth {
     pub fn new(config: &Config, index: usize, plant: &PlantSpec) -> Result<Self, Vec<Problem>> {
         let l = &config.loops[index];
         let mut problems = Vec::new();
-        let sources: Vec<Source> = l
-            .objective
-            .names()
+        let sources: Vec<Source> = loop_tags(l)
             .iter()
             .filter_map(|name| {
                 tag_source(config, plant, name)
@@ -99,11 +110,13 @@ impl Truth {
             Direction::Minimize => -1.0,
         };
         Ok(Truth {
+            sign,
             plausible: l.watchdog.objective_range,
             tracker: OptimumTracker::new(sign, plant_inputs.len()),
             optimum: vec![0.0; plant_inputs.len()],
             map: LoopMap {
                 objective: l.objective.clone(),
+                constraints: Constraints::new(l),
                 tag_values: vec![0.0; sources.len()],
                 sources,
                 plant_inputs,
@@ -118,8 +131,8 @@ impl Truth {
         &self.map.plant_inputs
     }
 
-    /// What the loop's tags read from the plant now (lagged, delayed and noisy), in the
-    /// objective's name order.
+    /// What the loop's tags read from the plant now (lagged, delayed and noisy), in
+    /// [`loop_tags`] order.
     pub fn read_tags(&self, plant: &Plant, values: &mut [f64]) {
         for (value, source) in values.iter_mut().zip(&self.map.sources) {
             *value = match *source {
@@ -131,7 +144,8 @@ impl Truth {
 
     /// The optimum within `bounds` at plant time `t_s`, with every other plant input as
     /// in `inputs`: the best noise-free objective and the setpoints that reach it. Only
-    /// setpoints whose objective is finite and plausible count as achievable.
+    /// setpoints whose objective is finite and plausible, and whose constraint values
+    /// respect every limit, count as achievable.
     pub fn optimum(&mut self, t_s: f64, inputs: &[f64], bounds: &[Range]) -> (f64, &[f64]) {
         self.map.map.set_time(t_s);
         self.map.point.copy_from_slice(inputs);
@@ -139,16 +153,39 @@ impl Truth {
         let map = &mut self.map;
         let found = self.tracker.find(bounds, &mut |u| {
             let j = map.at(u);
-            if check_objective(j, plausible).is_ok() { j } else { f64::NAN }
+            let allowed = check_objective(j, plausible).is_ok() && map.constraints.all_respected();
+            if allowed { j } else { f64::NAN }
         });
         self.optimum.copy_from_slice(found);
         let best = self.map.at(&self.optimum);
         (best, &self.optimum)
     }
 
+    /// The optimum as [`Truth::optimum`] finds it with the constraints ignored, by a full
+    /// scan: where the loop would go without them.
+    pub fn unconstrained_optimum(&mut self, t_s: f64, inputs: &[f64], bounds: &[Range]) -> Vec<f64> {
+        self.map.map.set_time(t_s);
+        self.map.point.copy_from_slice(inputs);
+        let plausible = self.plausible;
+        let map = &mut self.map;
+        let mut tracker = OptimumTracker::new(self.sign, bounds.len());
+        tracker
+            .find(bounds, &mut |u| {
+                let j = map.at(u);
+                if check_objective(j, plausible).is_ok() { j } else { f64::NAN }
+            })
+            .to_vec()
+    }
+
+    /// Whether the loop has constraints.
+    pub fn has_constraints(&self) -> bool {
+        !self.map.constraints.is_empty()
+    }
+
     /// The objective as the plant delivers it now, without its noise: the loop's objective
     /// over the plant's noise-free outputs, after their lag and dead time. What the process
     /// really gives, which on a plant with dynamics is not the static map at the setpoint.
+    /// The constraints' values of the same delivery follow in [`Truth::delivered_constraints`].
     pub fn delivered(&mut self, plant: &Plant) -> f64 {
         let map = &mut self.map;
         for (value, source) in map.tag_values.iter_mut().zip(&map.sources) {
@@ -157,7 +194,14 @@ impl Truth {
                 Source::Input(i) => plant.inputs()[i],
             };
         }
-        map.objective.eval(&map.tag_values)
+        map.evaluate()
+    }
+
+    /// Each constraint's value as the plant delivered it at the last [`Truth::delivered`].
+    pub fn delivered_constraints(
+        &self,
+    ) -> impl Iterator<Item = crate::supervisor::constraints::ConstraintView<'_>> {
+        self.map.constraints.views()
     }
 }
 

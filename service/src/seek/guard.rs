@@ -30,6 +30,12 @@ impl InputGuard {
         self.toward(current, proposed, self.estimate_range())
     }
 
+    /// The estimate of a back-off tick: one `max_step` the way `way` says (+1, -1; 0
+    /// holds), without dither, anywhere in the bounds.
+    pub fn walked_estimate(&self, current: f64, way: f64) -> Guarded {
+        self.toward(current, current + way * self.max_step, (self.bounds.min, self.bounds.max))
+    }
+
     /// The estimate of a tick without dither: it stays where it is, anywhere in the
     /// bounds, and walks back into bounds that moved past it at the rate limit.
     pub fn held_estimate(&self, current: f64) -> Guarded {
@@ -86,6 +92,8 @@ pub enum ObjectiveFault {
     NotFinite,
     /// Outside the watchdog's plausible range.
     OutOfRange,
+    /// A constraint's value is NaN or infinite: the sample cannot be judged against it.
+    ConstraintNotFinite,
 }
 
 impl ObjectiveFault {
@@ -93,6 +101,7 @@ impl ObjectiveFault {
         match self {
             ObjectiveFault::NotFinite => "objective_not_finite",
             ObjectiveFault::OutOfRange => "objective_out_of_range",
+            ObjectiveFault::ConstraintNotFinite => "constraint_not_finite",
         }
     }
 }

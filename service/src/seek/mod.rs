@@ -166,6 +166,27 @@ impl Seeker {
         acted
     }
 
+    /// A back-off tick: each input walks one rate-limited step the way `ways` says (+1
+    /// up, -1 down) from the setpoint it was last applied, which becomes its estimate, or
+    /// holds its estimate (0); all are applied without dither. So a walked setpoint moves
+    /// exactly at the rate limit, never against its way.
+    pub fn walk(&mut self, ways: &[f64]) -> GuardActions {
+        let mut acted = GuardActions::default();
+        for (input, &way) in self.inputs.iter_mut().zip(ways) {
+            let from = if input.applied.is_finite() { input.applied } else { input.estimate };
+            let estimate = if way != 0.0 {
+                input.guard.walked_estimate(from, way)
+            } else {
+                input.guard.held_estimate(input.estimate)
+            };
+            input.estimate = estimate.value;
+            input.applied = input.guard.clamp(estimate.value);
+            input.gradient = 0.0;
+            note(&mut acted, estimate);
+        }
+        acted
+    }
+
     /// A tick without seeking: the estimate stays (walking into the bounds if they moved)
     /// and is applied without dither; no gradient is estimated.
     pub fn hold(&mut self) -> GuardActions {

@@ -8,13 +8,15 @@ use crate::seek::guard::{ObjectiveFault, check_objective};
 use crate::seek::{GuardActions, InputState, Seeker};
 
 use super::bump::Staircase;
+use super::constraints::{Change, ConstraintView, Constraints, loop_tags};
 use super::states::{Effect, Event, Machine, StillFaulty};
 pub use super::states::{State, Trip};
 
 /// What was read at a tick.
 #[derive(Debug, Clone, Copy)]
 pub struct Reading<'a> {
-    /// The objective's tags in the objective's name order; `None` when the read failed.
+    /// The loop's tags in [`Control::tag_names`] order (the objective's first); `None`
+    /// when the read failed.
     pub tags: Option<&'a [f64]>,
     pub permit: Permit,
 }
@@ -120,6 +122,13 @@ pub struct FinishedTest {
 #[derive(Debug)]
 pub struct Control {
     objective: Expr,
+    /// Every tag the loop reads: the objective's, then its constraints'.
+    tags: Vec<String>,
+    constraints: Constraints,
+    /// The constraint whose value was not a finite number at the last tick, if any.
+    constraint_not_finite: Option<usize>,
+    /// The objective the core saw at the last tick, penalties included.
+    penalized: Option<f64>,
     plausible: Option<Range>,
     stale_after_s: f64,
     on_trip: OnTrip,
@@ -166,6 +175,10 @@ impl Control {
         let w = &config.watchdog;
         Control {
             objective: config.objective.clone(),
+            tags: loop_tags(config),
+            constraints: Constraints::new(config),
+            constraint_not_finite: None,
+            penalized: None,
             plausible: w.objective_range,
             stale_after_s: w.stale_after_s,
             on_trip: w.on_trip,
@@ -251,7 +264,9 @@ impl Control {
             return Some(Trip::Stale);
         }
         match objective {
-            Some(ObjectiveFault::NotFinite) => return Some(Trip::NotFinite),
+            Some(ObjectiveFault::NotFinite | ObjectiveFault::ConstraintNotFinite) => {
+                return Some(Trip::NotFinite);
+            }
             Some(ObjectiveFault::OutOfRange) => return Some(Trip::OutOfRange),
             None => {}
         }
@@ -329,16 +344,30 @@ impl Control {
     /// read its objective or its setpoints trips like a running one.
     pub fn tick(&mut self, tick: u64, now_s: f64, reading: Reading<'_>) -> TickReport {
         self.ticks += 1;
-        let objective = reading.tags.map(|values| self.objective.eval(values));
+        let n = self.objective.names().len();
+        let objective = reading.tags.map(|values| self.objective.eval(&values[..n.min(values.len())]));
         self.objective_value = objective;
-        if reading.tags.is_some() {
-            self.last_read_s = now_s;
-        }
-        let checked = match objective {
-            Some(j) => check_objective(j, self.plausible).map_err(Some),
-            None => Err(None),
+        self.constraint_not_finite = match reading.tags {
+            Some(values) => {
+                self.last_read_s = now_s;
+                self.constraints.evaluate(values)
+            }
+            None => {
+                self.constraints.forget();
+                None
+            }
         };
+        // A constraint that cannot be judged trips the loop like the objective.
+        let checked = match (objective, self.constraint_not_finite) {
+            (Some(j), None) => check_objective(j, self.plausible).map_err(Some),
+            (Some(j), Some(_)) => {
+                check_objective(j, self.plausible).and(Err(ObjectiveFault::ConstraintNotFinite)).map_err(Some)
+            }
+            (None, _) => Err(None),
+        };
+        self.constraints.judge(now_s);
         let objective_fault = checked.err().flatten();
+        self.penalized = None;
         let quiet =
             TickReport { write: false, objective, fault: objective_fault, guard: GuardActions::default() };
         let permit_event = self.read_permit(now_s, reading.permit);
@@ -395,10 +424,21 @@ impl Control {
                 }
             }
             (State::Seeking | State::Observing, Ok(j)) => {
-                if std::mem::take(&mut self.restart_filters) {
-                    self.seeker.restart();
-                }
-                let guard = self.seeker.step(tick, j);
+                let guard = match self.constraints.walk() {
+                    // A back-off walks (or holds) without dither; seeking starts afresh after.
+                    Some(walk) => {
+                        self.restart_filters = true;
+                        self.seeker.walk(walk)
+                    }
+                    None => {
+                        if std::mem::take(&mut self.restart_filters) {
+                            self.seeker.restart();
+                        }
+                        let seen = self.constraints.penalized(j);
+                        self.penalized = Some(seen);
+                        self.seeker.step(tick, seen)
+                    }
+                };
                 TickReport { write: state == State::Seeking, guard, ..quiet }
             }
             // Nothing trustworthy to seek on: hold the estimate without dither, and start
@@ -477,7 +517,12 @@ impl Control {
             Trip::Stale => {
                 format!("the objective's tags have not been read for {} s or more", self.stale_after_s)
             }
-            Trip::NotFinite => "the objective is not a finite number".into(),
+            Trip::NotFinite => match self.constraint_not_finite {
+                Some(k) => {
+                    format!("the value of constraint `{}` is not a finite number", self.constraints.name(k))
+                }
+                None => "the objective is not a finite number".into(),
+            },
             Trip::OutOfRange => match (self.objective_value, self.plausible) {
                 (Some(j), Some(r)) => format!("the objective {j} is outside its plausible range {r}"),
                 _ => "the objective is outside its plausible range".into(),
@@ -642,8 +687,31 @@ impl Control {
         self.objective_value
     }
 
-    pub fn objective_names(&self) -> &[String] {
-        self.objective.names()
+    /// Every tag the loop reads, in the order [`Reading::tags`] holds them: the
+    /// objective's names, then those only its constraints use.
+    pub fn tag_names(&self) -> &[String] {
+        &self.tags
+    }
+
+    /// The objective the core saw at the last seeking tick, worsened by the penalties of
+    /// constraints past their limits; `None` when the core did not step.
+    pub fn penalized_objective(&self) -> Option<f64> {
+        self.penalized
+    }
+
+    /// Whether any constraint is handled by a penalty.
+    pub fn has_penalty(&self) -> bool {
+        self.constraints.has_penalty()
+    }
+
+    /// Each constraint as it stands, in config order.
+    pub fn constraints(&self) -> impl ExactSizeIterator<Item = ConstraintView<'_>> + '_ {
+        self.constraints.views()
+    }
+
+    /// The constraints engaged or released since last asked, oldest first.
+    pub fn take_constraint_changes(&mut self) -> Vec<Change> {
+        self.constraints.take_changes()
     }
 
     pub fn ticks(&self) -> u64 {
@@ -1048,6 +1116,80 @@ mod tests {
             c.tick(n, n as f64, Reading { tags, permit: Permit::NotConfigured });
             assert_eq!(c.state(), if n < 19 { State::Fallback } else { State::Holding }, "tick {n}");
         }
+    }
+
+    /// A seeking loop (rate limit 1 per s, dither ±0.1 over 20 s) with a constraint on
+    /// tag `co`, read after the objective's `y`.
+    fn with_constraint(table: &str) -> LoopConfig {
+        let text = format!(
+            "[links.plc]\nmodbus_tcp = \"127.0.0.1:5020\"\n[tags.y]\nlink = \"plc\"\ninput_register = 0\ntype = \"f32\"\n\
+             [tags.co]\nlink = \"plc\"\ninput_register = 2\ntype = \"f32\"\n\
+             [[loops]]\nname = \"l\"\nobjective = \"y\"\ndirection = \"maximize\"\ntick_s = 1.0\nstart_mode = \"seeking\"\n\
+             [loops.filter]\nhighpass_hz = 0.01\n[loops.watchdog]\nstale_after_s = 5\n\
+             [[loops.inputs]]\nname = \"u\"\nwrite = {{ link = \"plc\", holding_register = 0, type = \"f32\" }}\n\
+             limits = [0, 6]\nbounds = [1, 5]\nsafe = 2\nmax_rate_per_s = 0.05\ndither_amplitude = 0.1\n\
+             dither_period_s = 20\ngain = 0.01\n[[loops.constraints]]\nname = \"co\"\nvalue = \"co\"\nmax = 150\n{table}"
+        );
+        crate::config::parse(&text, "test").expect("valid").loops.remove(0)
+    }
+
+    #[test]
+    fn a_constraint_value_that_is_not_a_number_trips_the_loop_like_the_objective() {
+        let mut c = Control::new(&with_constraint("handling = \"penalty\"\nweight = 1\n"));
+        assert_eq!(c.tag_names(), ["y", "co"]);
+        c.start(0.0, &[3.0]);
+        let r = c.tick(0, 0.0, good(&[10.0, f64::INFINITY]));
+        assert_eq!(r.fault, Some(ObjectiveFault::ConstraintNotFinite));
+        assert_eq!((c.state(), c.tripped()), (State::Fallback, Some(Trip::NotFinite)));
+        let refused = c.ask(Mode::Seeking).unwrap_err();
+        assert!(refused.0.contains("constraint `co`"), "{refused:?}");
+        c.tick(1, 1.0, good(&[10.0, 100.0]));
+        c.ask(Mode::Seeking).unwrap();
+    }
+
+    #[test]
+    fn a_back_off_walks_its_input_at_the_rate_limit_without_dither_and_never_against_its_way() {
+        let mut c =
+            Control::new(&with_constraint("handling = \"back_off\"\nmove = { u = \"down\" }\nmargin = 10\n"));
+        c.start(0.0, &[3.0]);
+        let mut last = f64::NAN;
+        for n in 0..6 {
+            c.tick(n, n as f64, good(&[10.0, 100.0]));
+            last = c.applied()[0];
+        }
+        assert_ne!(last, 3.0, "seeking: the dither is on");
+        let mut engaged_at = None;
+        for n in 6..20 {
+            c.tick(n, n as f64, good(&[10.0, 160.0]));
+            engaged_at.get_or_insert(n);
+            let now = c.applied()[0];
+            assert!(now <= last, "tick {n}: {now} after {last} moved up while backing off down");
+            assert!(last - now <= 0.05 + 1e-12, "tick {n}: faster than the rate limit");
+            assert_eq!(c.inputs()[0].estimate, now, "no dither while backing off");
+            last = now;
+        }
+        assert!(c.constraints().next().unwrap().engaged);
+        assert_eq!(c.take_constraint_changes().len(), 1);
+        // Margin inside: held for one dither period (20 s), then seeking again.
+        for n in 20..40 {
+            c.tick(n, n as f64, good(&[10.0, 130.0]));
+            assert_eq!(c.applied()[0], last, "tick {n}: held while the plant answers");
+        }
+        c.tick(40, 40.0, good(&[10.0, 130.0]));
+        assert!(!c.constraints().next().unwrap().engaged);
+        let released = c.take_constraint_changes();
+        assert_eq!(released.len(), 1);
+        assert!(!released[0].engaged);
+    }
+
+    #[test]
+    fn the_core_sees_the_penalized_objective_and_the_status_keeps_the_measured_one() {
+        let mut c = Control::new(&with_constraint("handling = \"penalty\"\nweight = 0.01\n"));
+        c.start(0.0, &[3.0]);
+        c.tick(0, 0.0, good(&[10.0, 170.0]));
+        assert_eq!(c.objective(), Some(10.0));
+        assert_eq!(c.penalized_objective(), Some(10.0 - 0.01 * 400.0));
+        assert!(c.has_penalty());
     }
 
     #[test]

@@ -2,6 +2,7 @@
 //! with the rehearsal) and publishing a [`status::LoopStatus`] on a watch channel.
 
 pub mod bump;
+pub mod constraints;
 pub mod control;
 pub mod states;
 pub mod status;

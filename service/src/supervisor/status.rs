@@ -24,9 +24,29 @@ pub struct LoopStatus {
     /// contract's list; an addition).
     pub skipped_ticks: u64,
     pub inputs: Vec<InputStatus>,
+    /// The loop's constraints in config order (empty for a loop without any).
+    pub constraints: Vec<ConstraintStatus>,
+    /// A loop with a penalty constraint: the objective its core saw at the last tick,
+    /// worsened by the penalties (`null` when the core did not step); absent otherwise.
+    #[serde(skip_serializing_if = "Option::is_none")]
+    pub penalized_objective: Option<Option<f64>>,
     /// A stepwise loop's dwell while it seeks.
     #[serde(skip_serializing_if = "Option::is_none")]
     pub dwell: Option<DwellStatus>,
+}
+
+/// A constraint as it stands.
+#[derive(Debug, Clone, PartialEq, Serialize)]
+pub struct ConstraintStatus {
+    pub name: String,
+    /// The value at the last tick whose tags were read.
+    pub value: Option<f64>,
+    pub limit: f64,
+    /// `max` (the value must stay at or below the limit) or `min`.
+    pub side: &'static str,
+    /// `back_off` or `penalty`.
+    pub handling: &'static str,
+    pub engaged: bool,
 }
 
 /// Where a seeking stepwise loop is in its dwell.
@@ -95,6 +115,23 @@ impl LoopStatus {
                     curvature: None,
                 })
                 .collect(),
+            constraints: config
+                .constraints
+                .iter()
+                .map(|c| ConstraintStatus {
+                    name: c.name.clone(),
+                    value: None,
+                    limit: c.limit.value(),
+                    side: c.limit.side(),
+                    handling: c.handling.kind().as_str(),
+                    engaged: false,
+                })
+                .collect(),
+            penalized_objective: config
+                .constraints
+                .iter()
+                .any(|c| c.handling.kind() == crate::config::HandlingKind::Penalty)
+                .then_some(None),
             dwell: None,
         }
     }

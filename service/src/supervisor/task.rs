@@ -11,7 +11,7 @@ use tokio_util::sync::CancellationToken;
 use super::control::{
     Cause, Control, FinishedTest, Permit, Reading, State, TestOutcome, TestRefused, TickReport,
 };
-use super::status::{DwellStatus, InputStatus, LoopStatus};
+use super::status::{ConstraintStatus, DwellStatus, InputStatus, LoopStatus};
 use crate::config::{Config, LoopConfig, Mode, OnTrip, Range};
 use crate::field::{LinkError, Links, LoopIo, Urgency};
 use crate::history::{BumpTestRow, History, InputSample, SampleRecord, now_ms, rfc3339};
@@ -110,13 +110,14 @@ pub struct LoopTask {
     config: Arc<LoopConfig>,
     name: Arc<str>,
     input_names: Vec<Arc<str>>,
+    constraint_names: Vec<Arc<str>>,
     control: Control,
     io: LoopIo,
-    /// The objective's tags, then the permit tag when there is one; `None` where the
-    /// last read failed.
+    /// The loop's tags (the objective's, then its constraints'), then the permit tag when
+    /// there is one; `None` where the last read failed.
     values: Vec<Option<f64>>,
-    /// The objective's tags of a read that got them all.
-    objective_values: Vec<f64>,
+    /// The loop's tags of a read that got them all.
+    tag_values: Vec<f64>,
     status: watch::Sender<LoopStatus>,
     commands: mpsc::Receiver<Command>,
     reporting: Reporting,
@@ -156,17 +157,18 @@ impl LoopTask {
     ) -> (Self, LoopHandle) {
         let loop_config = Arc::new(config.loops[index].clone());
         let control = Control::new(&loop_config);
-        let mut tags: Vec<String> = control.objective_names().to_vec();
+        let mut tags: Vec<String> = control.tag_names().to_vec();
         tags.extend(loop_config.permit.iter().cloned());
         let io = LoopIo::new(config, links, index, &tags);
         let (status, receiver) = watch::channel(LoopStatus::initial(&loop_config));
         let (commands_in, commands) = mpsc::channel(16);
         let task = LoopTask {
             values: vec![None; tags.len()],
-            objective_values: Vec::with_capacity(tags.len()),
+            tag_values: Vec::with_capacity(tags.len()),
             write_failing: vec![false; loop_config.inputs.len()],
             name: Arc::from(loop_config.name.as_str()),
             input_names: loop_config.inputs.iter().map(|i| Arc::from(i.name.as_str())).collect(),
+            constraint_names: loop_config.constraints.iter().map(|c| Arc::from(c.name.as_str())).collect(),
             config: loop_config.clone(),
             control,
             io,
@@ -225,10 +227,10 @@ impl LoopTask {
         }
         let read = self.io.read(&mut self.values).await;
         self.note_read(&read);
-        let (objective_tags, permit_tag) = self.values.split_at(self.control.objective_names().len());
-        self.objective_values.clear();
-        self.objective_values.extend(objective_tags.iter().map_while(|v| *v));
-        let tags_read = self.objective_values.len() == objective_tags.len();
+        let (loop_tags, permit_tag) = self.values.split_at(self.control.tag_names().len());
+        self.tag_values.clear();
+        self.tag_values.extend(loop_tags.iter().map_while(|v| *v));
+        let tags_read = self.tag_values.len() == loop_tags.len();
         if tags_read {
             self.objective_at = Some(now_ms());
         }
@@ -237,7 +239,7 @@ impl LoopTask {
             (true, Some(Some(v))) => Permit::Reads(*v),
             (true, _) => Permit::Unreadable,
         };
-        let tags = tags_read.then_some(&self.objective_values[..]);
+        let tags = tags_read.then_some(&self.tag_values[..]);
         let now_s = self.now_s();
         let report = self.control.tick(n, now_s, Reading { tags, permit });
         if report.write {
@@ -252,10 +254,43 @@ impl LoopTask {
             self.heartbeat = self.heartbeat.wrapping_add(1);
         }
         self.report_transitions("system");
+        self.report_constraints();
         self.follow_test().await;
         self.publish();
         self.record(&report);
         report
+    }
+
+    /// Logs and records every constraint engaged or released since the last call.
+    fn report_constraints(&mut self) {
+        for change in self.control.take_constraint_changes() {
+            let Some((c, view)) = self
+                .config
+                .constraints
+                .get(change.constraint)
+                .zip(self.control.constraints().nth(change.constraint))
+            else {
+                continue;
+            };
+            let (kind, what) = if change.engaged {
+                ("constraint_engaged", "constraint engaged: the value is past its limit")
+            } else {
+                ("constraint_released", "constraint released: the value has stayed inside its limit")
+            };
+            tracing::info!(
+                r#loop = %self.name, constraint = %c.name, value = change.value, limit = change.limit,
+                side = c.limit.side(), handling = view.handling.as_str(), "{what}"
+            );
+            self.reporting.event(
+                Some(&self.name),
+                kind,
+                serde_json::json!({
+                    "constraint": c.name, "value": change.value, "limit": change.limit,
+                    "side": c.limit.side(), "handling": view.handling.as_str(),
+                }),
+                "system",
+            );
+        }
     }
 
     /// Starts a bump test: from the estimate of a loop that writes, else from the setpoint
@@ -830,6 +865,18 @@ impl LoopTask {
             ticks: c.ticks(),
             skipped_ticks: self.skipped_ticks,
             inputs,
+            constraints: c
+                .constraints()
+                .map(|v| ConstraintStatus {
+                    name: v.name.to_owned(),
+                    value: v.value,
+                    limit: v.limit.value(),
+                    side: v.limit.side(),
+                    handling: v.handling.as_str(),
+                    engaged: v.engaged,
+                })
+                .collect(),
+            penalized_objective: c.has_penalty().then(|| c.penalized_objective()),
             dwell,
         });
     }
@@ -852,6 +899,14 @@ impl LoopTask {
                 }
             }
             m.set_state(&self.name, c.state());
+            for view in c.constraints() {
+                if let Some(v) = view.value {
+                    m.constraint_value.with_label_values(&[&*self.name, view.name]).set(v);
+                }
+                m.constraint_engaged
+                    .with_label_values(&[&*self.name, view.name])
+                    .set(f64::from(u8::from(view.engaged)));
+            }
         }
         if let Some(h) = &self.reporting.history {
             let known = |v: f64| if started { v } else { f64::NAN };
@@ -875,6 +930,12 @@ impl LoopTask {
                     .collect(),
                 // Only an estimate that was in force is one to resume from.
                 resumable: report.write && c.state() != State::Fallback,
+                constraints: self
+                    .constraint_names
+                    .iter()
+                    .zip(c.constraints())
+                    .map(|(name, v)| (name.clone(), v.value.unwrap_or(f64::NAN)))
+                    .collect(),
                 phase: match c.detail() {
                     Detail::Dwell(d) if c.state() == State::Seeking => Some(d.phase.as_str()),
                     _ => None,
