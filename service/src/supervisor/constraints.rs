@@ -4,10 +4,12 @@
 //!
 //! A constraint engages as soon as its value is past the limit. It is released only once
 //! the value has stayed inside for one cycle of the loop's method (the longest dither
-//! period, or a stepwise dwell), `margin` inside for a back-off. A back-off holds its
-//! inputs without dither meanwhile, so the plant answers the last move before seeking
-//! resumes. Noise at the limit cannot make a constraint flap: each engagement lasts at
-//! least one cycle.
+//! period, or a stepwise dwell), `margin` inside for a back-off. A back-off walks its
+//! inputs while the value is past the limit and holds them, without dither, once it is
+//! back inside, so the plant answers the last move before seeking resumes; a value that
+//! stays inside but short of `margin` for a whole cycle sets the walk going again until
+//! it is `margin` inside. Noise at the limit cannot make a constraint flap: each
+//! engagement lasts at least one cycle.
 
 use crate::config::{ConstraintConfig, Direction, Handling, HandlingKind, Limit, LoopConfig};
 use crate::expr::Expr;
@@ -59,6 +61,10 @@ struct Item {
     engaged: bool,
     /// Since when the value has been inside (`margin` inside, for a back-off) while engaged.
     inside_since_s: Option<f64>,
+    /// Since when a back-off's value has been inside the limit but short of `margin`.
+    short_since_s: Option<f64>,
+    /// Whether a back-off walks its inputs this tick.
+    walking: bool,
 }
 
 #[derive(Debug, Clone)]
@@ -141,12 +147,15 @@ impl Constraints {
             };
             let change = |engaged| Change { constraint: k, engaged, value: v, limit: item.limit.value() };
             if excess > 0.0 {
-                item.inside_since_s = None;
+                (item.inside_since_s, item.short_since_s, item.walking) = (None, None, true);
                 if !item.engaged {
                     item.engaged = true;
                     self.changes.push(change(true));
                 }
-            } else if item.engaged && excess <= -margin {
+            } else if !item.engaged {
+                item.walking = false;
+            } else if excess <= -margin {
+                (item.short_since_s, item.walking) = (None, false);
                 let since = *item.inside_since_s.get_or_insert(now_s);
                 if now_s - since >= self.release_after_s {
                     item.engaged = false;
@@ -154,8 +163,12 @@ impl Constraints {
                     self.changes.push(change(false));
                 }
             } else {
-                // Inside the limit but not yet `margin` inside: a back-off walks on.
+                // Inside the limit but short of `margin`: held while the plant answers the
+                // last move; walked on once that has lasted a cycle (and until `margin`
+                // inside).
                 item.inside_since_s = None;
+                let since = *item.short_since_s.get_or_insert(now_s);
+                item.walking = now_s - since >= self.release_after_s;
             }
         }
     }
@@ -185,8 +198,8 @@ impl Constraints {
     }
 
     /// While a back-off is engaged: the way to walk each input this tick (+1, -1, or 0 to
-    /// hold). An input walks while a constraint naming it is not yet `margin` inside;
-    /// two constraints walking it opposite ways hold it. `None` while no back-off is
+    /// hold). An input walks while a constraint naming it walks (see the module's
+    /// docs); two constraints walking it opposite ways hold it. `None` while no back-off is
     /// engaged: the loop seeks.
     pub fn walk(&mut self) -> Option<&[f64]> {
         self.walk.fill(0.0);
@@ -194,7 +207,7 @@ impl Constraints {
         for item in &self.items {
             if let (Act::BackOff { moves, .. }, true) = (&item.handling, item.engaged) {
                 engaged = true;
-                if item.inside_since_s.is_none() {
+                if item.walking {
                     for &(input, way) in moves {
                         self.walk[input] += way;
                     }
@@ -265,6 +278,8 @@ impl Item {
             current: None,
             engaged: false,
             inside_since_s: None,
+            short_since_s: None,
+            walking: false,
         }
     }
 
@@ -316,7 +331,7 @@ mod tests {
     }
 
     #[test]
-    fn a_back_off_walks_past_the_limit_holds_once_margin_inside_and_releases_a_cycle_later() {
+    fn a_back_off_walks_past_the_limit_holds_once_inside_and_releases_a_cycle_after_margin_inside() {
         let mut c = constraints(BACK_OFF);
         tick(&mut c, 0.0, 140.0);
         assert_eq!(c.walk(), None, "inside the limit: seek");
@@ -327,7 +342,7 @@ mod tests {
             vec![Change { constraint: 0, engaged: true, value: 151.0, limit: 150.0 }]
         );
         tick(&mut c, 2.0, 145.0);
-        assert_eq!(c.walk(), Some(&[1.0][..]), "inside, but not yet margin inside: walk on");
+        assert_eq!(c.walk(), Some(&[0.0][..]), "inside, not yet margin inside: hold while the plant answers");
         tick(&mut c, 3.0, 140.0);
         assert_eq!(c.walk(), Some(&[0.0][..]), "margin inside: hold");
         tick(&mut c, 22.0, 139.0);
@@ -339,6 +354,22 @@ mod tests {
             c.take_changes(),
             vec![Change { constraint: 0, engaged: false, value: 139.0, limit: 150.0 }]
         );
+    }
+
+    #[test]
+    fn a_value_that_stays_short_of_the_margin_for_a_cycle_sets_the_walk_going_again() {
+        let mut c = constraints(BACK_OFF);
+        tick(&mut c, 0.0, 151.0);
+        for n in 1..21 {
+            tick(&mut c, n as f64, 145.0);
+            assert_eq!(c.walk(), Some(&[0.0][..]), "held at {n} s");
+        }
+        tick(&mut c, 21.0, 145.0);
+        assert_eq!(c.walk(), Some(&[1.0][..]), "a cycle short of the margin: walk on");
+        tick(&mut c, 22.0, 141.0);
+        assert_eq!(c.walk(), Some(&[1.0][..]), "until margin inside");
+        tick(&mut c, 23.0, 139.0);
+        assert_eq!(c.walk(), Some(&[0.0][..]));
     }
 
     #[test]
