@@ -1,6 +1,7 @@
 //! `ridgeline demo`: the built-in scenario. A simulated plant served over Modbus/TCP on
 //! loopback, the full service against it, and a progress line per loop every few seconds
-//! saying how far each loop is from the simulated optimum.
+//! saying how far each loop is from the simulated optimum (the best point that respects
+//! its constraints), and where each constraint stands.
 
 use std::future::Future;
 use std::net::SocketAddr;
@@ -151,6 +152,11 @@ async fn progress_lines(
                     let span = input.bounds.max - input.bounds.min;
                     line.push_str(&format!(" (optimum {x:.3}, {:.1}% of span away)", 100.0 * away / span));
                 }
+            }
+            for c in &status.constraints {
+                let value = c.value.map_or_else(|| "-".to_owned(), |v| format!("{v:.1}"));
+                let state = if c.engaged { ", engaged: backing off" } else { "" };
+                line.push_str(&format!("  {} {value} ({} {}{state})", c.name, c.side, c.limit));
             }
             println!("{line}");
         }

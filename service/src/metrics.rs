@@ -231,6 +231,8 @@ mod tests {
             "ridgeline_link_errors_total{kind=\"timeout\",link=\"demo_plc\"} 0",
             "ridgeline_link_request_seconds_count{link=\"demo_plc\"} 0",
             "ridgeline_tick_lateness_seconds_count{loop=\"boiler-1-o2-trim\"} 0",
+            "ridgeline_constraint_value{constraint=\"co\",loop=\"boiler-1-o2-trim\"} 0",
+            "ridgeline_constraint_engaged{constraint=\"co\",loop=\"boiler-1-o2-trim\"} 0",
             "ridgeline_history_dropped_total 0",
             "ridgeline_build_info{version=",
         ] {

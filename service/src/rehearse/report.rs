@@ -193,7 +193,7 @@ impl fmt::Display for LoopReport {
         for c in &self.constraints {
             writeln!(
                 f,
-                "  constraint {} ({}, {} {}): past the limit {:.2}% of ticks, at most by {}, engaged {} times",
+                "  constraint {} ({}, {} {}): past the limit {:.2}% of ticks, at most by {:.4}, engaged {} times",
                 c.name,
                 c.handling,
                 c.side,
