@@ -141,6 +141,25 @@ async fn samples_come_back_oldest_first_with_since_until_and_limit_honoured_and_
 }
 
 #[tokio::test]
+async fn constraint_values_come_back_in_config_order_with_unknown_ones_as_none() {
+    let (_dir, history) = fresh().await;
+    let (sender, mut writer) = history.writer(settings(10), None);
+    let mut with = sample("boiler", 1000, &[("o2", 3.0, 3.0, 0.0)]);
+    with.constraints = vec![("stack_temp".into(), 212.5), ("co".into(), f64::NAN)];
+    assert!(sender.sample(with));
+    assert!(sender.sample(sample("boiler", 2000, &[("o2", 3.0, 3.0, 0.0)])));
+    assert_eq!(writer.step().await.unwrap().unwrap().samples, 2);
+    let rows = history.samples("boiler", None, None, 10).await.unwrap();
+    assert_eq!(rows[0].constraints, [("stack_temp".to_owned(), Some(212.5)), ("co".to_owned(), None)]);
+    assert!(rows[1].constraints.is_empty(), "a loop without constraints stores none");
+    let raw: Option<String> = sqlx::query_scalar("SELECT constraints FROM samples WHERE at_ms = 2000")
+        .fetch_one(&history.pool)
+        .await
+        .unwrap();
+    assert_eq!(raw, None, "NULL, not an empty object");
+}
+
+#[tokio::test]
 async fn the_sample_stream_pages_through_the_same_rows_as_the_list() {
     let (_dir, history) = fresh().await;
     let (sender, mut writer) = history.writer(settings(10_000), None);
