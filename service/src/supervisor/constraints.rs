@@ -192,6 +192,11 @@ impl Constraints {
         self.items.iter().all(|i| i.current.is_some_and(|v| v.is_finite() && i.limit.excess(v) <= 0.0))
     }
 
+    /// Whether a back-off constraint is engaged.
+    pub fn backing_off(&self) -> bool {
+        self.items.iter().any(|i| i.engaged && matches!(i.handling, Act::BackOff { .. }))
+    }
+
     /// Whether any constraint is handled by a penalty.
     pub fn has_penalty(&self) -> bool {
         self.items.iter().any(|i| matches!(i.handling, Act::Penalty { .. }))

@@ -52,6 +52,8 @@ pub enum Cause {
     TestStarted,
     /// The bump test's staircase is done.
     TestDone,
+    /// A back-off constraint engaged during a bump test, which ends it.
+    ConstraintEngaged,
 }
 
 impl Cause {
@@ -66,6 +68,7 @@ impl Cause {
             Cause::Acknowledged(m) => format!("{m} asked for once the fault had cleared"),
             Cause::TestStarted => "a bump test started".into(),
             Cause::TestDone => "the bump test is done".into(),
+            Cause::ConstraintEngaged => "a back_off constraint engaged: the loop backs off instead".into(),
         }
     }
 }
@@ -407,6 +410,12 @@ impl Control {
             },
             (_, _) if waiting => quiet,
             (State::Holding, _) => TickReport { write: true, guard: self.seeker.hold(), ..quiet },
+            // A test must not push past a limit the loop keeps to: it ends, and the
+            // back-off walks from the next tick, once the loop has read its setpoints back.
+            (State::Testing, _) if self.constraints.backing_off() => {
+                let _ = self.handle(Event::TestEnd, Cause::ConstraintEngaged);
+                quiet
+            }
             // The other inputs hold their estimates; the tested one follows the staircase.
             (State::Testing, _) => {
                 let guard = self.seeker.hold();
@@ -1182,6 +1191,26 @@ mod tests {
         let released = c.take_constraint_changes();
         assert_eq!(released.len(), 1);
         assert!(!released[0].engaged);
+    }
+
+    #[test]
+    fn a_back_off_engaging_during_a_bump_test_aborts_it_and_the_loop_backs_off() {
+        let mut c = Control::new(&with_constraint("handling = \"back_off\"\nmove = { u = \"down\" }\n"));
+        c.start(0.0, &[3.0]);
+        c.tick(0, 0.0, good(&[10.0, 100.0]));
+        c.start_test(0, 0.5, 100.0, &[3.0], 1).unwrap();
+        assert!(c.tick(1, 1.0, good(&[10.0, 100.0])).write);
+        assert_eq!(c.state(), State::Testing);
+        assert!(!c.tick(2, 2.0, good(&[10.0, 160.0])).write);
+        assert_eq!(c.state(), State::Seeking);
+        let ended = c.take_finished_test().expect("the test ended");
+        assert!(
+            matches!(ended.outcome, TestOutcome::Aborted(ref why) if why.contains("back_off")),
+            "{ended:?}"
+        );
+        c.restart_from(&[Some(3.2)]);
+        c.tick(3, 3.0, good(&[10.0, 160.0]));
+        assert!(c.applied()[0] < 3.2, "walks down from where the test left it");
     }
 
     #[test]

@@ -618,8 +618,9 @@ impl LoopTask {
                 Cause::PermitWithdrawn => "permit_withdrawn",
                 Cause::PermitGranted => "permit_granted",
                 Cause::PermitLost => "permit_lost",
-                // bump_test_started and bump_test_done say it, with the test's details.
-                Cause::TestStarted | Cause::TestDone => "",
+                // bump_test_started, bump_test_done and bump_test_aborted (with
+                // constraint_engaged, when a back-off ended the test) say it, with details.
+                Cause::TestStarted | Cause::TestDone | Cause::ConstraintEngaged => "",
                 // The mode_changed event of the request says it all.
                 Cause::Asked(_) => "",
             };
