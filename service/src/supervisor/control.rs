@@ -361,12 +361,15 @@ impl Control {
             }
         };
         // A constraint that cannot be judged trips the loop like the objective.
-        let checked = match (objective, self.constraint_not_finite) {
-            (Some(j), None) => check_objective(j, self.plausible).map_err(Some),
-            (Some(j), Some(_)) => {
-                check_objective(j, self.plausible).and(Err(ObjectiveFault::ConstraintNotFinite)).map_err(Some)
+        let constraints_ok = match self.constraint_not_finite {
+            Some(_) => Err(ObjectiveFault::ConstraintNotFinite),
+            None => Ok(()),
+        };
+        let checked = match objective {
+            Some(j) => {
+                check_objective(j, self.plausible).and_then(|j| constraints_ok.map(|()| j)).map_err(Some)
             }
-            (None, _) => Err(None),
+            None => Err(None),
         };
         // On the loop's own time grid, like a bump test: a cycle of the method is counted
         // in ticks, also when the service runs faster than real time.
