@@ -7,6 +7,8 @@ mod bad_input;
 mod bump_test;
 mod check_command;
 mod classic_loop;
+mod constraints;
+mod constraints_live;
 mod drive;
 mod faults;
 mod filters;
