@@ -684,14 +684,7 @@ const LOOP_KEYS: &[&str] = &[
 ];
 
 fn read_loop(t: &Table) -> Option<LoopConfig> {
-    let objective: Option<String> = t.req("objective");
-    let objective = objective.and_then(|src| match Expr::parse(&src) {
-        Ok(e) => Some(e),
-        Err(e) => {
-            t.problem_at("objective", format!("`{src}`: {e}"));
-            None
-        }
-    });
+    let objective = t.expr("objective");
     let kind: Option<MethodKind> = t.or("method", MethodKind::Sine);
     let method = kind.and_then(|kind| read_method(t, kind));
     let watchdog = t
@@ -764,14 +757,7 @@ const CONSTRAINT_KEYS: &[&str] = &["name", "value", "min", "max", "handling", "m
 
 fn read_constraint(t: &Table) -> Option<ConstraintConfig> {
     let name: Option<String> = t.req("name");
-    let value: Option<String> = t.req("value");
-    let value = value.and_then(|src| match Expr::parse(&src) {
-        Ok(e) => Some(e),
-        Err(e) => {
-            t.problem_at("value", format!("`{src}`: {e}"));
-            None
-        }
-    });
+    let value = t.expr("value");
     let (min, max): (Option<f64>, Option<f64>) = (t.opt("min"), t.opt("max"));
     let limit = match (t.has("min"), t.has("max")) {
         (true, true) => {

@@ -237,6 +237,13 @@ impl<'a, 'i, 's> Table<'a, 'i, 's> {
         read_value(value, &path, self.problems)
     }
 
+    /// A required expression (an objective, a constraint's value, a plant output),
+    /// parsed; a syntax error is recorded at the key with the expression quoted.
+    pub fn expr(&self, key: &str) -> Option<crate::expr::Expr> {
+        let src: String = self.req(key)?;
+        crate::expr::Expr::parse(&src).map_err(|e| self.problem_at(key, format!("`{src}`: {e}"))).ok()
+    }
+
     /// A key with a default for when it is absent.
     pub fn or<T: FromToml>(&self, key: &str, default: T) -> Option<T> {
         match self.get(key) {
@@ -293,14 +300,7 @@ impl<'a, 'i, 's> Table<'a, 'i, 's> {
                     .collect();
                 read.into_iter().collect()
             }
-            other => {
-                self.problems.at_span(
-                    &path,
-                    value.span(),
-                    format!("expected a table, found {}", kind(other)),
-                );
-                None
-            }
+            other => self.not_a_table(&path, value, other),
         }
     }
 
@@ -341,15 +341,13 @@ impl<'a, 'i, 's> Table<'a, 'i, 's> {
                 t.check_keys(known);
                 Some(t)
             }
-            other => {
-                self.problems.at_span(
-                    &path,
-                    value.span(),
-                    format!("expected a table, found {}", kind(other)),
-                );
-                None
-            }
+            other => self.not_a_table(&path, value, other),
         }
+    }
+
+    fn not_a_table<T>(&self, path: &str, value: &Spanned<DeValue<'i>>, found: &DeValue<'_>) -> Option<T> {
+        self.problems.at_span(path, value.span(), format!("expected a table, found {}", kind(found)));
+        None
     }
 }
 

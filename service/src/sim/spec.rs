@@ -130,14 +130,7 @@ fn read_spec(t: &Table) -> Option<PlantSpec> {
     let outputs: Vec<_> = outputs
         .iter()
         .map(|o| {
-            let src: Option<String> = o.req("expression");
-            let expression = src.and_then(|src| match Expr::parse(&src) {
-                Ok(e) => Some(e),
-                Err(e) => {
-                    o.problem_at("expression", format!("`{src}`: {e}"));
-                    None
-                }
-            });
+            let expression = o.expr("expression");
             Some(PlantOutput {
                 name: o.req("name")?,
                 input_register: o.req("input_register")?,
