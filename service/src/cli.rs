@@ -12,6 +12,7 @@ use clap::{Parser, Subcommand};
 
 use crate::config::Direction;
 use crate::config::{self, FileProblems, LogFormat};
+use crate::history::parse_duration_s;
 use crate::rehearse::{self, Options, Rehearsal};
 use crate::sim;
 use crate::tune::{self, Request, TuneError};
@@ -536,47 +537,6 @@ impl Progress {
     fn finish(&mut self) {
         if let Some(bar) = self.bar.take() {
             bar.finish_and_clear();
-        }
-    }
-}
-
-/// Parses `90s`, `45m`, `6h`, `2d` (decimals allowed) into seconds.
-pub fn parse_duration_s(text: &str) -> Result<f64, String> {
-    let text = text.trim();
-    let split = text.find(|c: char| c.is_ascii_alphabetic()).unwrap_or(text.len());
-    let (number, unit) = text.split_at(split);
-    let scale = match unit {
-        "s" => 1.0,
-        "m" => 60.0,
-        "h" => 3600.0,
-        "d" => 86_400.0,
-        "" => return Err(format!("`{text}` needs a unit: s, m, h or d (like 90s, 45m, 6h, 2d)")),
-        other => return Err(format!("unknown unit `{other}`: use s, m, h or d (like 90s, 45m, 6h, 2d)")),
-    };
-    match number.parse::<f64>() {
-        Ok(v) if v.is_finite() && v > 0.0 && v * scale <= 3.2e9 => Ok(v * scale),
-        Ok(_) => Err(format!("`{text}` must be a positive duration of at most 100 years")),
-        Err(_) => Err(format!("`{number}` is not a number (like 90s, 45m, 6h, 2d)")),
-    }
-}
-
-#[cfg(test)]
-mod tests {
-    use super::*;
-
-    #[test]
-    fn durations_take_seconds_minutes_hours_and_days() {
-        assert_eq!(parse_duration_s("90s"), Ok(90.0));
-        assert_eq!(parse_duration_s("45m"), Ok(2700.0));
-        assert_eq!(parse_duration_s("6h"), Ok(21_600.0));
-        assert_eq!(parse_duration_s("2d"), Ok(172_800.0));
-        assert_eq!(parse_duration_s("1.5h"), Ok(5400.0));
-    }
-
-    #[test]
-    fn durations_without_a_known_unit_or_positive_number_are_refused() {
-        for bad in ["90", "5w", "h", "-1h", "0s", "nans", "1e300d"] {
-            assert!(parse_duration_s(bad).is_err(), "{bad}");
         }
     }
 }

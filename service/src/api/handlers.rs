@@ -173,6 +173,76 @@ fn conflict(e: CommandError) -> ApiError {
     }
 }
 
+/// Trend windows: the default, and the longest one request may ask for.
+pub const TREND_WINDOW_DEFAULT: &str = "1h";
+pub const TREND_WINDOW_MAX_S: f64 = 30.0 * 86_400.0;
+/// Buckets of a trend: the default, and the most one request may ask for.
+pub const TREND_POINTS_DEFAULT: u32 = 300;
+pub const TREND_POINTS_MAX: u32 = 2000;
+
+#[derive(Debug, Deserialize)]
+#[serde(deny_unknown_fields)]
+pub struct TrendQuery {
+    window: Option<String>,
+    points: Option<u32>,
+}
+
+/// The loop's history over the last `window`, reduced by the database to at most
+/// `points` buckets of equal width, aligned to multiples of the width so that the same
+/// bucket answers alike from one request to the next.
+pub async fn trend(
+    State(state): State<ApiState>,
+    _: Reader,
+    PathParams(name): PathParams<String>,
+    QueryParams(query): QueryParams<TrendQuery>,
+) -> Result<Json<Value>, ApiError> {
+    let handle = state.find(&name)?;
+    let history = state.history.as_ref().ok_or_else(|| ApiError::Unavailable("no history is kept".into()))?;
+    let window = query.window.as_deref().unwrap_or(TREND_WINDOW_DEFAULT);
+    let window_s =
+        crate::history::parse_duration_s(window).map_err(|e| ApiError::BadRequest(format!("window: {e}")))?;
+    if window_s > TREND_WINDOW_MAX_S {
+        return Err(ApiError::BadRequest(format!("window: `{window}` is longer than 30 days (30d)")));
+    }
+    let points = limit_param(query.points, TREND_POINTS_DEFAULT, TREND_POINTS_MAX)
+        .map_err(|_| ApiError::BadRequest(format!("points: must be between 1 and {TREND_POINTS_MAX}")))?;
+    let window_ms = (window_s * 1000.0).round() as i64;
+    let bucket_ms = (window_ms + i64::from(points) - 1) / i64::from(points);
+    let until_ms = (crate::history::now_ms() / bucket_ms + 1) * bucket_ms;
+    let since_ms = until_ms - bucket_ms * i64::from(points);
+    let inputs: Vec<String> = handle.config.inputs.iter().map(|i| i.name.clone()).collect();
+    let buckets = history
+        .trend(&name, &inputs, since_ms, until_ms, bucket_ms)
+        .await
+        .map_err(|e| ApiError::Internal(e.to_string()))?;
+    let buckets: Vec<Value> = buckets
+        .iter()
+        .map(|b| {
+            let [min, mean, max] = b.objective;
+            let means: serde_json::Map<String, Value> = inputs
+                .iter()
+                .zip(&b.inputs)
+                .map(|(name, (applied, estimate))| {
+                    (name.clone(), json!({"applied": applied, "estimate": estimate}))
+                })
+                .collect();
+            json!({
+                "at": rfc3339(b.start_ms), "samples": b.samples,
+                "objective": {"min": min, "mean": mean, "max": max}, "inputs": means,
+            })
+        })
+        .collect();
+    Ok(Json(json!({
+        "loop": name,
+        "resolution": "raw",
+        "window_s": window_ms as f64 / 1000.0,
+        "bucket_s": bucket_ms as f64 / 1000.0,
+        "since": rfc3339(since_ms),
+        "until": rfc3339(until_ms),
+        "buckets": buckets,
+    })))
+}
+
 #[derive(Debug, Deserialize)]
 #[serde(deny_unknown_fields)]
 pub struct SampleQuery {

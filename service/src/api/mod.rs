@@ -217,6 +217,7 @@ pub fn router(state: ApiState) -> Router {
         .route("/api/v1/loops/{loop}/inputs/{input}/bump-test", post(handlers::bump_test))
         .route("/api/v1/bump-tests/{id}", get(handlers::bump_test_status))
         .route("/api/v1/loops/{loop}/samples", get(handlers::samples))
+        .route("/api/v1/loops/{loop}/trend", get(handlers::trend))
         .route("/api/v1/events", get(handlers::events))
         .route("/", get(page::status_page))
         // Before the counting layer, so that a 405 is counted with its route like any answer.

@@ -5,7 +5,7 @@ use serde_json::{Value, json};
 
 use super::handlers::{
     EVENTS_DEFAULT, EVENTS_MAX, SAMPLES_DEFAULT, SAMPLES_MAX_CSV, SAMPLES_MAX_JSON, SETTLE_MAX_DEFAULT_S,
-    SETTLE_MAX_MAX_S,
+    SETTLE_MAX_MAX_S, TREND_POINTS_DEFAULT, TREND_POINTS_MAX, TREND_WINDOW_DEFAULT,
 };
 
 fn error_response(description: &str) -> Value {
@@ -40,7 +40,43 @@ fn write_errors(mut responses: Value) -> Value {
     responses
 }
 
-/// The schemas the routes refer to.
+/// A trend's schema (apart from the others: `json!` has a recursion limit).
+fn trend_schema() -> Value {
+    let number_or_null = json!({"type": ["number", "null"]});
+    json!({
+        "type": "object",
+        "required": ["loop", "resolution", "window_s", "bucket_s", "since", "until", "buckets"],
+        "properties": {
+            "loop": {"type": "string"},
+            "resolution": {"enum": ["raw"], "description": "What the buckets were reduced from: raw samples."},
+            "window_s": {"type": "number"},
+            "bucket_s": {"type": "number", "description": "Width of each bucket."},
+            "since": {"type": "string", "format": "date-time"},
+            "until": {"type": "string", "format": "date-time"},
+            "buckets": {"type": "array", "description": "Buckets without samples are left out.", "items": {
+                "type": "object", "required": ["at", "samples", "objective", "inputs"],
+                "properties": {
+                    "at": {"type": "string", "format": "date-time", "description": "Start of the bucket."},
+                    "samples": {"type": "integer", "minimum": 1},
+                    "objective": {"type": "object", "required": ["min", "mean", "max"], "properties": {"min": number_or_null, "mean": number_or_null, "max": number_or_null}},
+                    "inputs": {"type": "object", "additionalProperties": {
+                        "type": "object", "required": ["applied", "estimate"],
+                        "properties": {"applied": number_or_null, "estimate": number_or_null}
+                    }}
+                }
+            }}
+        }
+    })
+}
+
+/// Every schema the routes refer to.
+fn all_schemas() -> Value {
+    let mut all = schemas();
+    all["Trend"] = trend_schema();
+    all
+}
+
+/// The schemas the routes refer to, but the trend's.
 fn schemas() -> Value {
     let number_or_null = json!({"type": ["number", "null"]});
     json!({
@@ -198,7 +234,7 @@ pub fn document() -> Value {
         },
         "components": {
             "securitySchemes": {"bearer": {"type": "http", "scheme": "bearer", "description": "A token from `ridgeline token`; its SHA-256 is in the config's [[access]]."}},
-            "schemas": schemas()
+            "schemas": all_schemas()
         },
         "paths": {
             "/healthz": {"get": {"summary": "200 while the process runs", "responses": {"200": {"description": "Running.", "content": {"text/plain": {"schema": {"type": "string"}}}}}}},
@@ -270,6 +306,23 @@ pub fn document() -> Value {
                     }},
                     "400": error_response("A malformed time, limit or format."),
                     "404": error_response("Unknown loop.")
+                }))
+            }},
+            "/api/v1/loops/{loop}/trend": {"get": {
+                "summary": "The loop's history over the last `window`, reduced in the database to at most `points` buckets, oldest first",
+                "security": [{}, {"bearer": []}],
+                "parameters": [
+                    loop_param(),
+                    {"name": "window", "in": "query", "schema": {"type": "string", "pattern": "^[0-9.]+[smhd]$", "default": TREND_WINDOW_DEFAULT},
+                     "description": "How far back: a duration like 90s, 45m, 8h or 2d, at most 30d."},
+                    {"name": "points", "in": "query", "schema": {"type": "integer", "minimum": 1, "maximum": TREND_POINTS_MAX, "default": TREND_POINTS_DEFAULT},
+                     "description": "At most this many buckets of equal width, aligned to multiples of the width."}
+                ],
+                "responses": read_errors(json!({
+                    "200": json_response("The trend.", json!({"$ref": "#/components/schemas/Trend"})),
+                    "400": error_response("A malformed or out-of-range window or points, naming the parameter."),
+                    "404": error_response("Unknown loop."),
+                    "503": error_response("No history is kept.")
                 }))
             }},
             "/api/v1/events": {"get": {

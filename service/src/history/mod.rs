@@ -19,7 +19,7 @@ use sqlx::sqlite::{
 };
 
 pub use lock::{InstanceLock, LockError};
-pub use time::{now_ms, parse_rfc3339, rfc3339};
+pub use time::{now_ms, parse_duration_s, parse_rfc3339, rfc3339};
 pub use writer::{HistorySender, Writer, WriterSettings, Written};
 
 static MIGRATOR: Migrator = sqlx::migrate!("../migrations");
@@ -118,6 +118,17 @@ pub struct SampleRow {
     /// Each constraint's value, in the order stored (config order); empty for a loop
     /// without constraints.
     pub constraints: Vec<(String, Option<f64>)>,
+}
+
+/// One bucket of a loop's trend.
+#[derive(Debug, Clone, PartialEq)]
+pub struct TrendBucket {
+    pub start_ms: i64,
+    pub samples: i64,
+    /// The objective's min, mean and max; `None` when no sample had one.
+    pub objective: [Option<f64>; 3],
+    /// Per input (in the order asked for), the means of applied and estimate.
+    pub inputs: Vec<(Option<f64>, Option<f64>)>,
 }
 
 /// One input's stored values; `None` where the value was not finite.
@@ -233,6 +244,59 @@ impl History {
         metrics: Option<Arc<crate::metrics::Metrics>>,
     ) -> (HistorySender, Writer) {
         writer::channel((*self.pool.connect_options()).clone(), settings, metrics, self.writes_ok.clone())
+    }
+
+    /// One loop's samples with `since_ms <= at < until_ms` reduced in the database to
+    /// buckets of `bucket_ms` from `since_ms`, oldest first; buckets without samples are
+    /// left out. Per bucket the objective's min, mean and max and each of `inputs`'
+    /// applied and estimate means; values that were not finite are left out of them.
+    pub async fn trend(
+        &self,
+        loop_name: &str,
+        inputs: &[String],
+        since_ms: i64,
+        until_ms: i64,
+        bucket_ms: i64,
+    ) -> Result<Vec<TrendBucket>, HistoryError> {
+        let mut sql = String::from(
+            "SELECT (at_ms - ?1) / ?2 AS bucket, count(*), min(objective), avg(objective), max(objective)",
+        );
+        for k in 0..inputs.len() {
+            sql.push_str(&format!(
+                ", avg(json_extract(inputs, ?{})), avg(json_extract(inputs, ?{}))",
+                6 + 2 * k,
+                7 + 2 * k
+            ));
+        }
+        sql.push_str(
+            " FROM samples WHERE loop = ?3 AND at_ms >= ?4 AND at_ms < ?5 GROUP BY bucket ORDER BY bucket",
+        );
+        // Built only from placeholders: every value, the JSON paths included, is bound.
+        let mut query = sqlx::query(sqlx::AssertSqlSafe(sql))
+            .bind(since_ms)
+            .bind(bucket_ms.max(1))
+            .bind(loop_name.to_owned())
+            .bind(since_ms)
+            .bind(until_ms);
+        for name in inputs {
+            // Input names are identifiers ([a-z][a-z0-9_]*), so they need no quoting in a path.
+            query = query.bind(format!("$.{name}.applied")).bind(format!("$.{name}.estimate"));
+        }
+        let rows = query.fetch_all(&self.pool).await?;
+        rows.iter()
+            .map(|r| {
+                let bucket: i64 = r.try_get(0)?;
+                let means = (0..inputs.len())
+                    .map(|k| Ok((r.try_get(5 + 2 * k)?, r.try_get(6 + 2 * k)?)))
+                    .collect::<Result<Vec<_>, sqlx::Error>>()?;
+                Ok(TrendBucket {
+                    start_ms: since_ms + bucket * bucket_ms.max(1),
+                    samples: r.try_get(1)?,
+                    objective: [r.try_get(2)?, r.try_get(3)?, r.try_get(4)?],
+                    inputs: means,
+                })
+            })
+            .collect()
     }
 
     /// Samples of one loop with `since_ms <= at < until_ms` (either optional), oldest

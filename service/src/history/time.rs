@@ -1,4 +1,5 @@
-//! Times in history: Unix milliseconds UTC inside, RFC 3339 at the API edge.
+//! Times in history: Unix milliseconds UTC inside, RFC 3339 at the API edge; and the
+//! durations (`90s`, `6h`, `2d`) of the command line and the API.
 
 use std::time::{SystemTime, UNIX_EPOCH};
 
@@ -161,6 +162,26 @@ fn civil_from_days(days: i64) -> (i64, i64, i64) {
     (yoe + era * 400 + i64::from(month <= 2), month, day)
 }
 
+/// Parses `90s`, `45m`, `6h`, `2d` (decimals allowed) into seconds.
+pub fn parse_duration_s(text: &str) -> Result<f64, String> {
+    let text = text.trim();
+    let split = text.find(|c: char| c.is_ascii_alphabetic()).unwrap_or(text.len());
+    let (number, unit) = text.split_at(split);
+    let scale = match unit {
+        "s" => 1.0,
+        "m" => 60.0,
+        "h" => 3600.0,
+        "d" => 86_400.0,
+        "" => return Err(format!("`{text}` needs a unit: s, m, h or d (like 90s, 45m, 6h, 2d)")),
+        other => return Err(format!("unknown unit `{other}`: use s, m, h or d (like 90s, 45m, 6h, 2d)")),
+    };
+    match number.parse::<f64>() {
+        Ok(v) if v.is_finite() && v > 0.0 && v * scale <= 3.2e9 => Ok(v * scale),
+        Ok(_) => Err(format!("`{text}` must be a positive duration of at most 100 years")),
+        Err(_) => Err(format!("`{number}` is not a number (like 90s, 45m, 6h, 2d)")),
+    }
+}
+
 #[cfg(test)]
 mod tests {
     use super::*;
@@ -218,6 +239,22 @@ mod tests {
         ] {
             let e = parse_rfc3339(text).unwrap_err();
             assert!(e.contains(why) && e.contains(&format!("`{text}`")), "{text}: {e}");
+        }
+    }
+
+    #[test]
+    fn durations_take_seconds_minutes_hours_and_days() {
+        assert_eq!(parse_duration_s("90s"), Ok(90.0));
+        assert_eq!(parse_duration_s("45m"), Ok(2700.0));
+        assert_eq!(parse_duration_s("6h"), Ok(21_600.0));
+        assert_eq!(parse_duration_s("2d"), Ok(172_800.0));
+        assert_eq!(parse_duration_s("1.5h"), Ok(5400.0));
+    }
+
+    #[test]
+    fn durations_without_a_known_unit_or_positive_number_are_refused() {
+        for bad in ["90", "5w", "h", "-1h", "0s", "nans", "1e300d"] {
+            assert!(parse_duration_s(bad).is_err(), "{bad}");
         }
     }
 }
