@@ -56,6 +56,22 @@ pub fn reference_python() -> PathBuf {
     }
 }
 
+/// Prometheus' checker, `promtool`, from `PATH`. Fails the test (never skips it) when it
+/// is not installed.
+pub fn promtool() -> PathBuf {
+    std::env::var_os("PATH")
+        .into_iter()
+        .flat_map(|p| std::env::split_paths(&p).collect::<Vec<_>>())
+        .map(|d| d.join("promtool"))
+        .find(|p| p.exists())
+        .unwrap_or_else(|| {
+            panic!(
+                "promtool is not installed: it is in Debian's package `prometheus`. tests/run installs it when it \
+                 runs as root with apt-get; elsewhere install it (apt-get install prometheus) and run again"
+            )
+        })
+}
+
 /// Runs a Python script with the reference interpreter and parses the JSON it prints.
 pub fn python_json(script: &str) -> serde_json::Value {
     let out =

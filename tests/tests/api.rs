@@ -4,7 +4,7 @@
 use std::time::Duration;
 
 use ridgeline::api::token_sha256;
-use ridgeline_tests::{HttpAnswer, Peer, http_request, python_json, ridgeline, wait_until};
+use ridgeline_tests::{HttpAnswer, Peer, http_request, promtool, python_json, ridgeline, wait_until};
 
 use crate::rig::Rig;
 
@@ -383,21 +383,6 @@ fn metrics_parse_with_prometheus_client_and_name_every_series() {
             String::from_utf8_lossy(&out.stderr)
         );
     }
-}
-
-/// Prometheus' checker. Fails the test (never skips it) when it is not installed.
-fn promtool() -> std::path::PathBuf {
-    std::env::var_os("PATH")
-        .into_iter()
-        .flat_map(|p| std::env::split_paths(&p).collect::<Vec<_>>())
-        .map(|d| d.join("promtool"))
-        .find(|p| p.exists())
-        .unwrap_or_else(|| {
-            panic!(
-                "promtool is not installed: it is in Debian's package `prometheus`. tests/run installs it when it \
-                 runs as root with apt-get; elsewhere install it (apt-get install prometheus) and run again"
-            )
-        })
 }
 
 #[test]
