@@ -2,6 +2,7 @@
 //!
 //! Each check against an outside source names it beside the assertion.
 
+mod alerts;
 mod api;
 mod bad_input;
 mod bump_test;
@@ -17,9 +18,11 @@ mod methods_live;
 mod modbus_interop;
 mod newton;
 mod plant_lag;
+mod prometheus;
 mod properties;
 mod rehearse_command;
 mod rig;
 mod several_inputs;
 mod stepwise;
+mod trend;
 mod tune_command;
