@@ -1,6 +1,6 @@
 //! Fault tests: the real binary against a real Modbus peer on loopback, with every fault
 //! an operator worries about. Each prints what it measured (`cargo test -- --nocapture`
-//! shows it); the README's reliability table comes from these lines.
+//! shows it); docs/operation.md's reliability table comes from these lines.
 
 use std::time::{Duration, Instant};
 

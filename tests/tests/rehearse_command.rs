@@ -305,14 +305,14 @@ fn the_methods_example_rehearses_the_three_methods_side_by_side_as_the_readme_sh
     assert_eq!(methods, ["sine", "newton", "stepwise"]);
     assert!(rows.iter().all(|r| r["settle_time_s"].is_f64() && r["bound_hits"] == 0), "{rows:?}");
 
-    // The README's table is what the command prints.
+    // docs/methods.md's table is what the command prints.
     let text = rehearse(cfg, plant, &args);
     assert_eq!(text.code, Some(0), "{}", text.stderr);
-    let readme = std::fs::read_to_string(root().join("README.md")).expect("README");
+    let readme = std::fs::read_to_string(root().join("docs/methods.md")).expect("docs/methods.md");
     let table: Vec<&str> = text.stdout.lines().skip_while(|l| !l.starts_with("side by side")).collect();
     assert_eq!(table.len(), 5, "{}", text.stdout);
     for line in table {
-        assert!(readme.contains(line), "the README lacks `{line}`");
+        assert!(readme.contains(line), "docs/methods.md lacks `{line}`");
     }
 
     // The three write one setpoint: a file for rehearsal only.
