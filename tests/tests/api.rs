@@ -429,7 +429,16 @@ fn the_status_page_shows_each_loop() {
     let page = call(&r.rig, "GET", "/", None, None);
     assert_eq!(page.status, 200);
     assert!(page.header("content-type").unwrap().starts_with("text/html"));
-    assert!(page.body.contains("<td rowspan=\"1\">bowl</td>"), "{}", page.body);
+    // One self-contained document: its script draws each loop from the API it is served
+    // beside (tests/tests/status_page.rs drives it in a browser), and it loads nothing
+    // from anywhere else.
+    assert!(page.body.contains("<script>") && page.body.contains("\"/api/v1/loops\""), "{}", page.body);
+    for outside in ["http://", "https://", "src=", "@import", "url("] {
+        assert!(!page.body.contains(outside), "the page refers to `{outside}`");
+    }
+    assert!(page.header("content-security-policy").unwrap().contains("default-src 'none'"));
+    let loops = call(&r.rig, "GET", "/api/v1/loops", None, None).json();
+    assert_eq!(loops[0]["name"], "bowl");
 }
 
 #[test]

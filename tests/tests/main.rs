@@ -23,6 +23,7 @@ mod properties;
 mod rehearse_command;
 mod rig;
 mod several_inputs;
+mod status_page;
 mod stepwise;
 mod trend;
 mod tune_command;

@@ -235,9 +235,10 @@ fn newton_and_stepwise_loops_show_their_curvature_dwell_and_phases() {
     // At most the 4 s of a dwell to go.
     assert!(dwell["ends_in_s"].as_f64().is_some_and(|s| (0.0..=4.0).contains(&s)), "{stepwise}");
     assert!(stepwise["inputs"][0].get("curvature").is_none(), "{stepwise}");
+    // The page draws itself from the status above; its script shows both.
     let page = bench.get("/", &[]).body;
-    assert!(page.contains("(curvature "), "the page shows the curvature: {page}");
-    assert!(page.contains("(settling)") || page.contains("(averaging)"), "the page shows the dwell: {page}");
+    assert!(page.contains("input.curvature.estimate"), "the page shows the curvature");
+    assert!(page.contains("status.dwell.phase"), "the page shows the dwell");
 
     // Four levels after the reference one: four steps, each judged on its own dwell.
     wait_until("five dwells of the stepwise loop are in history", Duration::from_secs(60), || {
