@@ -195,6 +195,7 @@ pub const ROUTES: &[(&str, &str)] = &[
     ("POST", "/api/v1/loops/{loop}/inputs/{input}/bump-test"),
     ("GET", "/api/v1/bump-tests/{id}"),
     ("GET", "/api/v1/loops/{loop}/samples"),
+    ("GET", "/api/v1/loops/{loop}/trend"),
     ("GET", "/api/v1/events"),
     ("GET", "/"),
 ];
