@@ -27,6 +27,7 @@ pub struct Metrics {
     pub link_errors: IntCounterVec,
     pub link_request_seconds: HistogramVec,
     pub tick_lateness_seconds: HistogramVec,
+    pub ticks_skipped: IntCounterVec,
     pub history_queue_depth: IntGauge,
     pub history_rows: IntCounter,
     pub history_dropped: IntCounter,
@@ -121,6 +122,11 @@ impl Metrics {
                 &["loop"],
                 seconds,
             ),
+            ticks_skipped: counter(
+                "ridgeline_ticks_skipped_total",
+                "Ticks skipped because they came more than half a period late (after a stall).",
+                &["loop"],
+            ),
             history_queue_depth: IntGauge::new(
                 "ridgeline_history_queue_depth",
                 "Samples waiting to be written to history.",
@@ -161,6 +167,7 @@ impl Metrics {
         for l in &config.loops {
             self.objective.with_label_values(&[&l.name]);
             self.tick_lateness_seconds.with_label_values(&[&l.name]);
+            self.ticks_skipped.with_label_values(&[&l.name]);
             self.set_state(&l.name, State::of(l.start_mode));
             for reason in FALLBACK_REASONS {
                 self.fallbacks.with_label_values(&[l.name.as_str(), reason]);
@@ -231,6 +238,7 @@ mod tests {
             "ridgeline_link_errors_total{kind=\"timeout\",link=\"demo_plc\"} 0",
             "ridgeline_link_request_seconds_count{link=\"demo_plc\"} 0",
             "ridgeline_tick_lateness_seconds_count{loop=\"boiler-1-o2-trim\"} 0",
+            "ridgeline_ticks_skipped_total{loop=\"boiler-1-o2-trim\"} 0",
             "ridgeline_constraint_value{constraint=\"co\",loop=\"boiler-1-o2-trim\"} 0",
             "ridgeline_constraint_engaged{constraint=\"co\",loop=\"boiler-1-o2-trim\"} 0",
             "ridgeline_history_dropped_total 0",

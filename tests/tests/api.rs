@@ -346,6 +346,7 @@ fn metrics_parse_with_prometheus_client_and_name_every_series() {
         ("ridgeline_link_errors", "counter", &["kind", "link"]),
         ("ridgeline_link_request_seconds", "histogram", &["link"]),
         ("ridgeline_tick_lateness_seconds", "histogram", &["loop"]),
+        ("ridgeline_ticks_skipped", "counter", &["loop"]),
         ("ridgeline_history_queue_depth", "gauge", &[]),
         ("ridgeline_history_rows", "counter", &[]),
         ("ridgeline_history_dropped", "counter", &[]),

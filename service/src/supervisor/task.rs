@@ -214,6 +214,9 @@ impl LoopTask {
             && n > last + 1
         {
             self.skipped_ticks += n - last - 1;
+            if let Some(m) = &self.reporting.metrics {
+                m.ticks_skipped.with_label_values(&[&*self.name]).inc_by(n - last - 1);
+            }
             tracing::debug!(r#loop = %self.name, skipped = n - last - 1, "late ticks skipped");
             // The objective now answers a setpoint older than one tick: the demodulation
             // would pair it with the wrong phase.
