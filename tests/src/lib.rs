@@ -56,20 +56,29 @@ pub fn reference_python() -> PathBuf {
     }
 }
 
-/// Prometheus' checker, `promtool`, from `PATH`. Fails the test (never skips it) when it
-/// is not installed.
-pub fn promtool() -> PathBuf {
+/// A program the checks run against, found on `PATH`. Fails the test (never skips it)
+/// when it is missing, naming the Debian packages that hold it; tests/run installs them
+/// when it runs as root with apt-get.
+pub fn debian_tool(program: &str, packages: &[&str]) -> PathBuf {
     std::env::var_os("PATH")
-        .into_iter()
-        .flat_map(|p| std::env::split_paths(&p).collect::<Vec<_>>())
-        .map(|d| d.join("promtool"))
-        .find(|p| p.exists())
+        .iter()
+        .flat_map(std::env::split_paths)
+        .map(|d| d.join(program))
+        .find(|p| p.is_file())
         .unwrap_or_else(|| {
+            let named = packages.iter().map(|p| format!("`{p}`")).collect::<Vec<_>>().join(" and ");
+            let plural = if packages.len() > 1 { "s" } else { "" };
             panic!(
-                "promtool is not installed: it is in Debian's package `prometheus`. tests/run installs it when it \
-                 runs as root with apt-get; elsewhere install it (apt-get install prometheus) and run again"
+                "{program} is not installed: it is in Debian's package{plural} {named}. tests/run installs it when it runs as \
+                 root with apt-get; elsewhere install it (apt-get install {}) and run again",
+                packages.join(" ")
             )
         })
+}
+
+/// Prometheus' checker, `promtool` (Debian's package `prometheus`).
+pub fn promtool() -> PathBuf {
+    debian_tool("promtool", &["prometheus"])
 }
 
 /// Runs a Python script with the reference interpreter and parses the JSON it prints.

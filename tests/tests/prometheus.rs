@@ -181,19 +181,9 @@ fn api(prometheus: SocketAddr, path: &str) -> Value {
     })
 }
 
-/// `prometheus` on PATH. Fails the test (never skips it) when it is missing.
+/// `prometheus` on PATH (Debian's package `prometheus`); the test fails without it.
 fn prometheus_bin() -> PathBuf {
-    std::env::var_os("PATH")
-        .iter()
-        .flat_map(std::env::split_paths)
-        .map(|dir| dir.join("prometheus"))
-        .find(|p| p.is_file())
-        .unwrap_or_else(|| {
-            panic!(
-                "`prometheus` is not installed (not on PATH): install Debian's package `prometheus` \
-                 (apt-get install prometheus); this check needs a real Prometheus and fails without it"
-            )
-        })
+    ridgeline_tests::debian_tool("prometheus", &["prometheus"])
 }
 
 /// Starts Prometheus on a free loopback port with `config`, its storage in `dir`, and

@@ -14,20 +14,10 @@ use crate::rig::Rig;
 const OPERATOR: &str = "page-operator-token-0001";
 const VIEWER: &str = "page-viewer-token-0002";
 
-/// `chromedriver` from `PATH`. Fails the test (never skips it) when it is not installed.
+/// `chromedriver` from `PATH` (Debian's `chromium-driver`, beside `chromium`); the test
+/// fails without it.
 fn chromedriver() -> PathBuf {
-    std::env::var_os("PATH")
-        .into_iter()
-        .flat_map(|p| std::env::split_paths(&p).collect::<Vec<_>>())
-        .map(|d| d.join("chromedriver"))
-        .find(|p| p.exists())
-        .unwrap_or_else(|| {
-            panic!(
-                "chromedriver is not installed: it is in Debian's packages `chromium` and `chromium-driver`. \
-                 tests/run installs them when it runs as root with apt-get; elsewhere install them \
-                 (apt-get install chromium chromium-driver) and run again"
-            )
-        })
+    ridgeline_tests::debian_tool("chromedriver", &["chromium", "chromium-driver"])
 }
 
 /// Loads the page, waits for a trend per loop, reads the console, then changes the mode
