@@ -138,6 +138,7 @@ impl Rehearsal {
                 .collect();
             control.start(0.0, &estimates);
             control.take_transitions();
+            let tags = control.tag_names().len();
             loops.push(LoopRun {
                 config: l.clone(),
                 control,
@@ -146,7 +147,7 @@ impl Rehearsal {
                 stats: Stats::default(),
                 csv: None,
                 trace: None,
-                tag_values: vec![0.0; crate::supervisor::constraints::loop_tags(l).len()],
+                tag_values: vec![0.0; tags],
                 constraints: l.constraints.iter().map(|_| ConstraintStats::default()).collect(),
                 bounds: l.inputs.iter().map(|i| i.bounds).collect(),
                 optimum: vec![0.0; l.inputs.len()],
@@ -280,8 +281,8 @@ impl LoopRun {
 
     fn record(&mut self, t: f64, measured: f64, best: f64) -> anyhow::Result<()> {
         if let Some(csv) = &mut self.csv {
-            write_row(csv, t, measured, best, self.control.inputs(), &self.optimum)
-                .and_then(|()| write_constraints(csv, self.control.constraints().map(|c| c.value)))
+            let constraints = self.control.constraints().map(|c| c.value);
+            write_row(csv, t, measured, best, self.control.inputs(), &self.optimum, constraints)
                 .with_context(|| format!("could not write the CSV file of loop {}", self.config.name))?;
         }
         if let Some(trace) = &mut self.trace {
@@ -424,17 +425,6 @@ fn csv_header(config: &LoopConfig) -> String {
     header
 }
 
-/// Ends a CSV row with each constraint's value as the loop read it (empty when unknown).
-fn write_constraints(out: &mut impl Write, values: impl Iterator<Item = Option<f64>>) -> std::io::Result<()> {
-    for v in values {
-        match v.filter(|v| v.is_finite()) {
-            Some(v) => write!(out, ",{v}")?,
-            None => write!(out, ",")?,
-        }
-    }
-    writeln!(out)
-}
-
 fn open_csv(dir: &Path, config: &LoopConfig) -> anyhow::Result<BufWriter<File>> {
     std::fs::create_dir_all(dir)
         .with_context(|| format!("could not create the CSV folder {}", dir.display()))?;
@@ -452,6 +442,7 @@ fn write_row(
     best: f64,
     inputs: &[crate::seek::InputState],
     optimum: &[f64],
+    constraints: impl Iterator<Item = Option<f64>>,
 ) -> std::io::Result<()> {
     write!(out, "{t},")?;
     // A non-finite objective is an empty cell, never `NaN` text in a numeric column.
@@ -462,7 +453,14 @@ fn write_row(
     for (input, x) in inputs.iter().zip(optimum) {
         write!(out, ",{},{},{},{x}", input.applied, input.estimate, input.gradient)?;
     }
-    Ok(())
+    // Each constraint's value as the loop read it; empty when unknown.
+    for v in constraints {
+        match v.filter(|v| v.is_finite()) {
+            Some(v) => write!(out, ",{v}")?,
+            None => write!(out, ",")?,
+        }
+    }
+    writeln!(out)
 }
 
 /// Records a loop's trace for the plot with bounded memory: every tick up to

@@ -7,7 +7,7 @@ use crate::config::{Config, Direction, Problem, Range, RegisterSpace, TagSource}
 use crate::expr::Expr;
 use crate::seek::guard::check_objective;
 use crate::sim::{Plant, PlantSpec, StaticMap};
-use crate::supervisor::constraints::{Constraints, loop_tags};
+use crate::supervisor::constraints::Constraints;
 
 use super::optimum::OptimumTracker;
 
@@ -34,7 +34,7 @@ pub struct Truth {
 struct LoopMap {
     objective: Expr,
     constraints: Constraints,
-    /// Plant source of each of the loop's tags, in [`loop_tags`] order (the objective's first).
+    /// Plant source of each of the loop's tags, in [`Constraints::tag_names`] order (the objective's first).
     sources: Vec<Source>,
     /// Plant input index of each loop input.
     plant_inputs: Vec<usize>,
@@ -75,7 +75,9 @@ impl Truth {
     pub fn new(config: &Config, index: usize, plant: &PlantSpec) -> Result<Self, Vec<Problem>> {
         let l = &config.loops[index];
         let mut problems = Vec::new();
-        let sources: Vec<Source> = loop_tags(l)
+        let constraints = Constraints::new(l);
+        let sources: Vec<Source> = constraints
+            .tag_names()
             .iter()
             .filter_map(|name| {
                 tag_source(config, plant, name)
@@ -116,7 +118,7 @@ impl Truth {
             optimum: vec![0.0; plant_inputs.len()],
             map: LoopMap {
                 objective: l.objective.clone(),
-                constraints: Constraints::new(l),
+                constraints,
                 tag_values: vec![0.0; sources.len()],
                 sources,
                 plant_inputs,
@@ -132,7 +134,7 @@ impl Truth {
     }
 
     /// What the loop's tags read from the plant now (lagged, delayed and noisy), in
-    /// [`loop_tags`] order.
+    /// [`Constraints::tag_names`] order.
     pub fn read_tags(&self, plant: &Plant, values: &mut [f64]) {
         for (value, source) in values.iter_mut().zip(&self.map.sources) {
             *value = match *source {

@@ -38,6 +38,8 @@ pub struct Change {
 /// Every constraint of one loop.
 #[derive(Debug, Clone)]
 pub struct Constraints {
+    /// The loop's tags, in [`loop_tags`] order.
+    tags: Vec<String>,
     items: Vec<Item>,
     /// +1 when the loop maximizes, -1 when it minimizes.
     sign: f64,
@@ -81,7 +83,7 @@ enum Act {
 
 /// The tags a loop reads each tick: the objective's names, then those of its constraints
 /// that the objective does not use, each once.
-pub fn loop_tags(config: &LoopConfig) -> Vec<String> {
+fn loop_tags(config: &LoopConfig) -> Vec<String> {
     let mut tags: Vec<String> = config.objective.names().to_vec();
     for c in &config.constraints {
         for name in c.value.names() {
@@ -99,6 +101,7 @@ impl Constraints {
         let tags = loop_tags(config);
         let items = config.constraints.iter().map(|c| Item::new(c, config, &tags)).collect();
         Constraints {
+            tags,
             items,
             sign: match config.direction {
                 Direction::Maximize => 1.0,
@@ -108,6 +111,11 @@ impl Constraints {
             walk: vec![0.0; config.inputs.len()],
             changes: Vec::new(),
         }
+    }
+
+    /// Every tag the loop reads, in [`loop_tags`] order: values come in this order.
+    pub fn tag_names(&self) -> &[String] {
+        &self.tags
     }
 
     pub fn is_empty(&self) -> bool {

@@ -8,7 +8,7 @@ use crate::seek::guard::{ObjectiveFault, check_objective};
 use crate::seek::{GuardActions, InputState, Seeker};
 
 use super::bump::Staircase;
-use super::constraints::{Change, ConstraintView, Constraints, loop_tags};
+use super::constraints::{Change, ConstraintView, Constraints};
 use super::states::{Effect, Event, Machine, StillFaulty};
 pub use super::states::{State, Trip};
 
@@ -125,8 +125,6 @@ pub struct FinishedTest {
 #[derive(Debug)]
 pub struct Control {
     objective: Expr,
-    /// Every tag the loop reads: the objective's, then its constraints'.
-    tags: Vec<String>,
     constraints: Constraints,
     /// The constraint whose value was not a finite number at the last tick, if any.
     constraint_not_finite: Option<usize>,
@@ -178,7 +176,6 @@ impl Control {
         let w = &config.watchdog;
         Control {
             objective: config.objective.clone(),
-            tags: loop_tags(config),
             constraints: Constraints::new(config),
             constraint_not_finite: None,
             penalized: None,
@@ -704,7 +701,7 @@ impl Control {
     /// Every tag the loop reads, in the order [`Reading::tags`] holds them: the
     /// objective's names, then those only its constraints use.
     pub fn tag_names(&self) -> &[String] {
-        &self.tags
+        self.constraints.tag_names()
     }
 
     /// The objective the core saw at the last seeking tick, worsened by the penalties of

@@ -267,14 +267,8 @@ impl LoopTask {
     /// Logs and records every constraint engaged or released since the last call.
     fn report_constraints(&mut self) {
         for change in self.control.take_constraint_changes() {
-            let Some((c, view)) = self
-                .config
-                .constraints
-                .get(change.constraint)
-                .zip(self.control.constraints().nth(change.constraint))
-            else {
-                continue;
-            };
+            let Some(c) = self.config.constraints.get(change.constraint) else { continue };
+            let handling = c.handling.kind().as_str();
             let (kind, what) = if change.engaged {
                 ("constraint_engaged", "constraint engaged: the value is past its limit")
             } else {
@@ -282,14 +276,14 @@ impl LoopTask {
             };
             tracing::info!(
                 r#loop = %self.name, constraint = %c.name, value = change.value, limit = change.limit,
-                side = c.limit.side(), handling = view.handling.as_str(), "{what}"
+                side = c.limit.side(), handling, "{what}"
             );
             self.reporting.event(
                 Some(&self.name),
                 kind,
                 serde_json::json!({
                     "constraint": c.name, "value": change.value, "limit": change.limit,
-                    "side": c.limit.side(), "handling": view.handling.as_str(),
+                    "side": c.limit.side(), "handling": handling,
                 }),
                 "system",
             );
