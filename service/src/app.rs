@@ -13,7 +13,7 @@ use tokio_util::sync::CancellationToken;
 use crate::api::{self, AccessList, ApiState};
 use crate::config::Config;
 use crate::field::Links;
-use crate::history::{History, InstanceLock, Writer, WriterSettings};
+use crate::history::{History, InstanceLock, Retention, Writer, WriterSettings};
 use crate::metrics::Metrics;
 use crate::report::Reporting;
 use crate::supervisor::{self, LoopHandle, LoopTask};
@@ -58,10 +58,15 @@ impl App {
     pub async fn build(config: &Config, options: &Options) -> anyhow::Result<App> {
         let database = options.database.clone().unwrap_or_else(|| config.service.database.clone());
         let mut lock = InstanceLock::acquire(&database)?;
-        let history = History::open(&database).await?;
+        let service = &config.service;
+        let retention =
+            Retention { raw_days: service.retention_days, rollup_days: service.rollup_retention_days };
+        let history = History::open(&database, retention).await?;
         let metrics = Arc::new(Metrics::new(config));
-        let settings =
-            WriterSettings { queue_capacity: HISTORY_QUEUE, retention_days: config.service.retention_days };
+        let settings = WriterSettings {
+            queue_capacity: HISTORY_QUEUE,
+            disk_free_floor_bytes: u64::from(service.disk_free_floor_mb) * 1024 * 1024,
+        };
         let (sender, writer) = history.writer(settings, Some(metrics.clone()));
         let reporting = Reporting { metrics: Some(metrics.clone()), history: Some(sender) };
 

@@ -31,6 +31,7 @@ pub struct Metrics {
     pub history_queue_depth: IntGauge,
     pub history_rows: IntCounter,
     pub history_dropped: IntCounter,
+    pub history_bytes: IntGauge,
     pub http_requests: IntCounterVec,
     build_info: GaugeVec,
 }
@@ -142,6 +143,11 @@ impl Metrics {
                 "Samples not written because the history queue was full (events are never dropped).",
             )
             .expect("static metric definition"),
+            history_bytes: IntGauge::new(
+                "ridgeline_history_bytes",
+                "Size of the history database and its write-ahead log, in bytes.",
+            )
+            .expect("static metric definition"),
             http_requests: counter(
                 "ridgeline_http_requests_total",
                 "API requests, by route template and status code.",
@@ -154,6 +160,7 @@ impl Metrics {
             metrics.registry.register(Box::new(metrics.history_queue_depth.clone())),
             metrics.registry.register(Box::new(metrics.history_rows.clone())),
             metrics.registry.register(Box::new(metrics.history_dropped.clone())),
+            metrics.registry.register(Box::new(metrics.history_bytes.clone())),
         ];
         assert!(registered.iter().all(Result::is_ok), "history metrics registered once");
         metrics.build_info.with_label_values(&[env!("CARGO_PKG_VERSION")]).set(1.0);
@@ -242,6 +249,7 @@ mod tests {
             "ridgeline_constraint_value{constraint=\"co\",loop=\"boiler-1-o2-trim\"} 0",
             "ridgeline_constraint_engaged{constraint=\"co\",loop=\"boiler-1-o2-trim\"} 0",
             "ridgeline_history_dropped_total 0",
+            "ridgeline_history_bytes 0",
             "ridgeline_build_info{version=",
         ] {
             assert!(out.contains(needle), "missing `{needle}` in:\n{out}");

@@ -12,7 +12,7 @@ use serde_json::{Value, json};
 
 use super::{ApiError, ApiState, JsonBody, Operator, PathParams, QueryParams, Reader, openapi};
 use crate::config::{MethodKind, Mode, Range};
-use crate::history::{BumpTestRow, EventRow, SampleRow, parse_rfc3339, rfc3339};
+use crate::history::{BumpTestRow, EventRow, History, Resolution, SampleRow, parse_rfc3339, rfc3339};
 use crate::supervisor::CommandError;
 use crate::supervisor::status::LoopStatus;
 
@@ -29,10 +29,8 @@ pub async fn healthz() -> &'static str {
 }
 
 pub async fn readyz(State(state): State<ApiState>) -> Result<Json<Value>, ApiError> {
-    if state.history.as_ref().is_some_and(|h| !h.writes_ok()) {
-        return Err(ApiError::Unavailable(
-            "history is not being written: its last batch failed, or its writer has stopped".into(),
-        ));
+    if let Some(why) = state.history.as_ref().and_then(History::write_failure) {
+        return Err(ApiError::Unavailable(format!("history is not being written: {why}")));
     }
     let stopped: Vec<&str> = state
         .loops
@@ -173,9 +171,8 @@ fn conflict(e: CommandError) -> ApiError {
     }
 }
 
-/// Trend windows: the default, and the longest one request may ask for.
+/// The trend window when none is asked for; the longest is the rollups' retention.
 pub const TREND_WINDOW_DEFAULT: &str = "1h";
-pub const TREND_WINDOW_MAX_S: f64 = 30.0 * 86_400.0;
 /// Buckets of a trend: the default, and the most one request may ask for.
 pub const TREND_POINTS_DEFAULT: u32 = 300;
 pub const TREND_POINTS_MAX: u32 = 2000;
@@ -187,9 +184,11 @@ pub struct TrendQuery {
     points: Option<u32>,
 }
 
-/// The loop's history over the last `window`, reduced by the database to at most
-/// `points` buckets of equal width, aligned to multiples of the width so that the same
-/// bucket answers alike from one request to the next.
+/// The loop's history over the last `window`, reduced to at most `points` buckets of
+/// equal width, aligned to multiples of the width so that the same bucket answers alike
+/// from one request to the next: from raw samples for buckets under a minute within the
+/// samples' retention, else from the one-minute or (for buckets of an hour or more)
+/// one-hour rollups. The answer says which.
 pub async fn trend(
     State(state): State<ApiState>,
     _: Reader,
@@ -201,18 +200,23 @@ pub async fn trend(
     let window = query.window.as_deref().unwrap_or(TREND_WINDOW_DEFAULT);
     let window_s =
         crate::history::parse_duration_s(window).map_err(|e| ApiError::BadRequest(format!("window: {e}")))?;
-    if window_s > TREND_WINDOW_MAX_S {
-        return Err(ApiError::BadRequest(format!("window: `{window}` is longer than 30 days (30d)")));
+    let max_days = history.retention().rollup_days;
+    if window_s > f64::from(max_days) * 86_400.0 {
+        return Err(ApiError::BadRequest(format!(
+            "window: `{window}` is longer than the {max_days} days rollups are kept ({max_days}d)"
+        )));
     }
     let points = limit_param(query.points, TREND_POINTS_DEFAULT, TREND_POINTS_MAX)
         .map_err(|_| ApiError::BadRequest(format!("points: must be between 1 and {TREND_POINTS_MAX}")))?;
     let window_ms = (window_s * 1000.0).round() as i64;
     let bucket_ms = (window_ms + i64::from(points) - 1) / i64::from(points);
-    let until_ms = (crate::history::now_ms() / bucket_ms + 1) * bucket_ms;
+    let now_ms = crate::history::now_ms();
+    let until_ms = (now_ms / bucket_ms + 1) * bucket_ms;
     let since_ms = until_ms - bucket_ms * i64::from(points);
+    let resolution = Resolution::for_trend(bucket_ms, since_ms, history.raw_kept_from_ms(now_ms));
     let inputs: Vec<String> = handle.config.inputs.iter().map(|i| i.name.clone()).collect();
     let buckets = history
-        .trend(&name, &inputs, since_ms, until_ms, bucket_ms)
+        .trend(&name, &inputs, since_ms, until_ms, bucket_ms, resolution)
         .await
         .map_err(|e| ApiError::Internal(e.to_string()))?;
     let buckets: Vec<Value> = buckets
@@ -234,7 +238,7 @@ pub async fn trend(
         .collect();
     Ok(Json(json!({
         "loop": name,
-        "resolution": "raw",
+        "resolution": resolution.as_str(),
         "window_s": window_ms as f64 / 1000.0,
         "bucket_s": bucket_ms as f64 / 1000.0,
         "since": rfc3339(since_ms),

@@ -48,7 +48,7 @@ fn trend_schema() -> Value {
         "required": ["loop", "resolution", "window_s", "bucket_s", "since", "until", "buckets"],
         "properties": {
             "loop": {"type": "string"},
-            "resolution": {"enum": ["raw"], "description": "What the buckets were reduced from: raw samples."},
+            "resolution": {"enum": ["raw", "1m", "1h"], "description": "What the buckets were reduced from: raw samples, or one-minute or one-hour rollups."},
             "window_s": {"type": "number"},
             "bucket_s": {"type": "number", "description": "Width of each bucket."},
             "since": {"type": "string", "format": "date-time"},
@@ -309,12 +309,12 @@ pub fn document() -> Value {
                 }))
             }},
             "/api/v1/loops/{loop}/trend": {"get": {
-                "summary": "The loop's history over the last `window`, reduced in the database to at most `points` buckets, oldest first",
+                "summary": "The loop's history over the last `window`, reduced to at most `points` buckets, oldest first: from raw samples for buckets under a minute within retention_days, else from one-minute or one-hour rollups (`resolution` says which)",
                 "security": [{}, {"bearer": []}],
                 "parameters": [
                     loop_param(),
                     {"name": "window", "in": "query", "schema": {"type": "string", "pattern": "^[0-9.]+[smhd]$", "default": TREND_WINDOW_DEFAULT},
-                     "description": "How far back: a duration like 90s, 45m, 8h or 2d, at most 30d."},
+                     "description": "How far back: a duration like 90s, 45m, 8h or 2d, at most [service] rollup_retention_days (730d by default)."},
                     {"name": "points", "in": "query", "schema": {"type": "integer", "minimum": 1, "maximum": TREND_POINTS_MAX, "default": TREND_POINTS_DEFAULT},
                      "description": "At most this many buckets of equal width, aligned to multiples of the width."}
                 ],

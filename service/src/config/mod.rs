@@ -30,7 +30,12 @@ pub struct Config {
 pub struct Service {
     pub listen: SocketAddr,
     pub database: PathBuf,
+    /// Days raw samples are kept.
     pub retention_days: u32,
+    /// Days the one-minute and one-hour rollups are kept.
+    pub rollup_retention_days: u32,
+    /// Free space (MiB) under the database below which a `disk_low` event is sent.
+    pub disk_free_floor_mb: u32,
     pub open_reads: bool,
     pub log_format: LogFormat,
 }
@@ -496,12 +501,22 @@ pub fn parse(text: &str, file: &str) -> Result<Config, FileProblems> {
 }
 
 fn read_config(t: &Table) -> Option<Config> {
-    let service =
-        match t.table("service", &["listen", "database", "retention_days", "open_reads", "log_format"]) {
-            Some(s) => read_service(&s),
-            None if t.has("service") => None,
-            None => Some(Service::default()),
-        };
+    let service = match t.table(
+        "service",
+        &[
+            "listen",
+            "database",
+            "retention_days",
+            "rollup_retention_days",
+            "disk_free_floor_mb",
+            "open_reads",
+            "log_format",
+        ],
+    ) {
+        Some(s) => read_service(&s),
+        None if t.has("service") => None,
+        None => Some(Service::default()),
+    };
     let access: Vec<_> =
         t.tables("access", &["name", "token_sha256", "role"]).iter().map(read_access).collect();
     let links: Vec<_> = t
@@ -545,7 +560,9 @@ impl Default for Service {
         Service {
             listen: SocketAddr::from(([127, 0, 0, 1], 8080)),
             database: PathBuf::from("/var/lib/ridgeline/history.db"),
-            retention_days: 90,
+            retention_days: 30,
+            rollup_retention_days: 730,
+            disk_free_floor_mb: 1024,
             open_reads: true,
             log_format: LogFormat::Text,
         }
@@ -571,6 +588,8 @@ fn read_service(t: &Table) -> Option<Service> {
         listen: listen?,
         database: database?,
         retention_days: t.or("retention_days", d.retention_days)?,
+        rollup_retention_days: t.or("rollup_retention_days", d.rollup_retention_days)?,
+        disk_free_floor_mb: t.or("disk_free_floor_mb", d.disk_free_floor_mb)?,
         open_reads: t.or("open_reads", d.open_reads)?,
         log_format: t.or("log_format", d.log_format)?,
     })

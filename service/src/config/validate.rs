@@ -21,8 +21,18 @@ pub(super) fn validate_loops_apart(config: &Config, p: &Problems) {
 }
 
 fn validate_with(config: &Config, p: &Problems, loops_share_a_plant: bool) {
-    if config.service.retention_days == 0 {
+    let service = &config.service;
+    if service.retention_days == 0 {
         p.at("service.retention_days", "must be at least 1 day");
+    }
+    if service.rollup_retention_days < service.retention_days {
+        p.at(
+            "service.rollup_retention_days",
+            format!(
+                "{} days is shorter than retention_days ({}): rollups are what is left of samples past their retention",
+                service.rollup_retention_days, service.retention_days
+            ),
+        );
     }
     let mut access_names = HashSet::new();
     for (i, a) in config.access.iter().enumerate() {

@@ -1,14 +1,21 @@
-//! The history store: samples, events and last estimates in SQLite, the only place that talks SQL.
+//! The history store: samples, rollups, events and last estimates in SQLite, the only place that talks SQL.
 
+mod blocks;
+mod legacy;
 mod lock;
+mod packing;
+mod rollup;
 mod time;
 mod writer;
 
+use std::borrow::Cow;
+use std::collections::HashMap;
 use std::fmt;
 use std::path::{Path, PathBuf};
-use std::sync::Arc;
+use std::sync::{Arc, RwLock};
 use std::time::Duration;
 
+use futures_util::TryStreamExt;
 use futures_util::stream::{self, BoxStream, StreamExt};
 use serde::de::{Deserializer, MapAccess, Visitor};
 use serde::{Deserialize, Serialize};
@@ -20,13 +27,65 @@ use sqlx::sqlite::{
 
 pub use lock::{InstanceLock, LockError};
 pub use time::{now_ms, parse_duration_s, parse_rfc3339, rfc3339};
-pub use writer::{HistorySender, Writer, WriterSettings, Written};
+pub use writer::{HistorySender, MAX_BATCH_SAMPLES, Writer, WriterSettings, Written};
+
+use blocks::{Layout, MAX_BLOCK_SPAN_MS};
+use rollup::{HOUR_MS, MINUTE_MS};
 
 static MIGRATOR: Migrator = sqlx::migrate!("../migrations");
 
-/// Rows per page when streaming samples: large enough that paging costs little, small
-/// enough that no read holds a snapshot (and so the WAL) for long.
-const STREAM_PAGE_ROWS: u32 = 1000;
+/// Blocks per page when reading samples (about 25 samples each): large enough that paging
+/// costs little, small enough that no read holds a snapshot (and so the WAL) for long.
+const PAGE_BLOCKS: i64 = 64;
+
+/// A stored block: its key, the names its samples carry, and their bytes.
+type StoredBlock = (i64, Layout, Vec<u8>);
+const MS_PER_DAY: i64 = 86_400_000;
+
+/// How long history is kept: raw samples, and their one-minute and one-hour rollups.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub struct Retention {
+    /// Samples older than this many days are deleted (once rolled up).
+    pub raw_days: u32,
+    /// Rollups older than this many days are deleted.
+    pub rollup_days: u32,
+}
+
+impl Default for Retention {
+    fn default() -> Self {
+        Retention { raw_days: 30, rollup_days: 730 }
+    }
+}
+
+/// What a trend was built from.
+#[derive(Debug, Clone, Copy, PartialEq, Eq)]
+pub enum Resolution {
+    Raw,
+    Minute,
+    Hour,
+}
+
+impl Resolution {
+    /// The coarsest resolution that still gives a bucket of `bucket_ms` more than one
+    /// value, rollups wherever raw samples are no longer kept from `since_ms`.
+    pub fn for_trend(bucket_ms: i64, since_ms: i64, raw_kept_from_ms: i64) -> Resolution {
+        if bucket_ms >= HOUR_MS {
+            Resolution::Hour
+        } else if bucket_ms >= MINUTE_MS || since_ms < raw_kept_from_ms {
+            Resolution::Minute
+        } else {
+            Resolution::Raw
+        }
+    }
+
+    pub fn as_str(self) -> &'static str {
+        match self {
+            Resolution::Raw => "raw",
+            Resolution::Minute => "1m",
+            Resolution::Hour => "1h",
+        }
+    }
+}
 
 /// The history database: a small pool for reads and checks, and the settings the
 /// writer's own connection uses. Cheap to clone.
@@ -34,14 +93,29 @@ const STREAM_PAGE_ROWS: u32 = 1000;
 pub struct History {
     pool: SqlitePool,
     path: Arc<Path>,
+    retention: Retention,
+    /// Names by id, as far as read so far (the table only grows).
+    names: Arc<RwLock<HashMap<i64, Arc<str>>>>,
     /// Whether the writer's last batch was committed (true until one fails), and the
     /// writer is still there.
-    writes_ok: Arc<std::sync::atomic::AtomicBool>,
+    write_failure: WriteFailure,
 }
 
 impl fmt::Debug for History {
     fn fmt(&self, f: &mut fmt::Formatter<'_>) -> fmt::Result {
         f.debug_struct("History").field("path", &self.path).finish_non_exhaustive()
+    }
+}
+
+/// Shared by the writer and [`History`]: `None` while batches are committed, else why not.
+#[derive(Debug, Clone, Default)]
+pub(crate) struct WriteFailure(Arc<std::sync::Mutex<Option<String>>>);
+
+impl WriteFailure {
+    fn set(&self, failure: Option<String>) {
+        if let Ok(mut f) = self.0.lock() {
+            *f = failure;
+        }
     }
 }
 
@@ -71,11 +145,11 @@ pub struct SampleRecord {
     pub at_ms: i64,
     /// `None` when the tick had no usable objective; a non-finite value is stored as NULL.
     pub objective: Option<f64>,
-    pub state: &'static str,
+    pub state: Cow<'static, str>,
     /// In config order, which is the order they come back in.
     pub inputs: Vec<InputSample>,
     /// A stepwise loop's dwell phase (`settling` or `averaging`) while it seeks.
-    pub phase: Option<&'static str>,
+    pub phase: Option<Cow<'static, str>>,
     /// Each constraint's value in config order (NaN when not known); empty for a loop
     /// without constraints.
     pub constraints: Vec<(Arc<str>, f64)>,
@@ -197,9 +271,10 @@ pub struct StoredEstimate {
 
 impl History {
     /// Opens the database at `path`, creating the file and its directories, with WAL
-    /// journal, `synchronous=NORMAL`, a busy timeout (5 s) and foreign keys, and applies
-    /// the embedded migrations. A file that cannot be opened is an error naming the path.
-    pub async fn open(path: &Path) -> Result<History, HistoryError> {
+    /// journal, `synchronous=NORMAL`, a busy timeout (5 s) and foreign keys, applies the
+    /// embedded migrations and converts samples stored by earlier versions to blocks. A
+    /// file that cannot be opened is an error naming the path.
+    pub async fn open(path: &Path, retention: Retention) -> Result<History, HistoryError> {
         let open_error = |reason: String| HistoryError::Open { path: path.to_owned(), reason };
         if let Some(parent) = path.parent().filter(|p| !p.as_os_str().is_empty()) {
             std::fs::create_dir_all(parent).map_err(|e| open_error(e.to_string()))?;
@@ -220,14 +295,15 @@ impl History {
             .connect_with(options)
             .await
             .map_err(|e| open_error(reason(&e)))?;
-        MIGRATOR
-            .run(&pool)
-            .await
-            .map_err(|e| HistoryError::Migrate { path: path.to_owned(), reason: e.to_string() })?;
+        let migrate_error = |reason: String| HistoryError::Migrate { path: path.to_owned(), reason };
+        MIGRATOR.run(&pool).await.map_err(|e| migrate_error(e.to_string()))?;
+        legacy::convert(&pool).await.map_err(|e| migrate_error(e.to_string()))?;
         let history = History {
             pool,
             path: path.into(),
-            writes_ok: Arc::new(std::sync::atomic::AtomicBool::new(true)),
+            retention,
+            names: Arc::default(),
+            write_failure: WriteFailure::default(),
         };
         // One service per store (the instance lock), so a test still running is a stopped one's.
         let aborted = history.abort_unfinished_bump_tests().await.map_err(|e| open_error(e.to_string()))?;
@@ -243,13 +319,29 @@ impl History {
         settings: WriterSettings,
         metrics: Option<Arc<crate::metrics::Metrics>>,
     ) -> (HistorySender, Writer) {
-        writer::channel((*self.pool.connect_options()).clone(), settings, metrics, self.writes_ok.clone())
+        let options = (*self.pool.connect_options()).clone();
+        writer::channel(options, &self.path, self.retention, settings, metrics, self.write_failure.clone())
     }
 
-    /// One loop's samples with `since_ms <= at < until_ms` reduced in the database to
-    /// buckets of `bucket_ms` from `since_ms`, oldest first; buckets without samples are
-    /// left out. Per bucket the objective's min, mean and max and each of `inputs`'
-    /// applied and estimate means; values that were not finite are left out of them.
+    /// How long history is kept.
+    pub fn retention(&self) -> Retention {
+        self.retention
+    }
+
+    /// The earliest time raw samples are kept from, `now_ms` being now.
+    pub fn raw_kept_from_ms(&self, now_ms: i64) -> i64 {
+        now_ms.saturating_sub(i64::from(self.retention.raw_days) * MS_PER_DAY)
+    }
+
+    /// One loop's history with `since_ms <= at < until_ms` reduced to buckets of
+    /// `bucket_ms` from `since_ms`, oldest first, from raw samples or from rollups as
+    /// `resolution` says; buckets without samples are left out. Per bucket the number of
+    /// samples, the objective's min, mean and max and each of `inputs`' applied and
+    /// estimate means; values that were not finite are left out of them. Rollups are
+    /// reduced by the database, up to the bucket the rolled-up minutes (or hours) end in;
+    /// that bucket and the ones after come from raw samples, so a trend reaches the
+    /// present. Raw samples are decoded a page of blocks at a time, so memory holds the
+    /// buckets and one page whatever the window.
     pub async fn trend(
         &self,
         loop_name: &str,
@@ -257,46 +349,150 @@ impl History {
         since_ms: i64,
         until_ms: i64,
         bucket_ms: i64,
+        resolution: Resolution,
     ) -> Result<Vec<TrendBucket>, HistoryError> {
-        let mut sql = String::from(
-            "SELECT (at_ms - ?1) / ?2 AS bucket, count(*), min(objective), avg(objective), max(objective)",
-        );
-        for k in 0..inputs.len() {
-            sql.push_str(&format!(
-                ", avg(json_extract(inputs, ?{})), avg(json_extract(inputs, ?{}))",
-                6 + 2 * k,
-                7 + 2 * k
-            ));
-        }
-        sql.push_str(
-            " FROM samples WHERE loop = ?3 AND at_ms >= ?4 AND at_ms < ?5 GROUP BY bucket ORDER BY bucket",
-        );
-        // Built only from placeholders: every value, the JSON paths included, is bound.
-        let mut query = sqlx::query(sqlx::AssertSqlSafe(sql))
-            .bind(since_ms)
-            .bind(bucket_ms.max(1))
-            .bind(loop_name.to_owned())
-            .bind(since_ms)
-            .bind(until_ms);
+        let bucket_ms = bucket_ms.max(1);
+        let Some(loop_id) = self.name_id(loop_name).await? else { return Ok(Vec::new()) };
+        let mut input_ids = Vec::with_capacity(inputs.len());
         for name in inputs {
-            // Input names are identifiers ([a-z][a-z0-9_]*), so they need no quoting in a path.
-            query = query.bind(format!("$.{name}.applied")).bind(format!("$.{name}.estimate"));
+            input_ids.push(self.name_id(name).await?);
         }
-        let rows = query.fetch_all(&self.pool).await?;
-        rows.iter()
+        match resolution {
+            Resolution::Raw => self.raw_trend(loop_id, &input_ids, since_ms, until_ms, bucket_ms).await,
+            Resolution::Minute | Resolution::Hour => {
+                // Rollups reach as far as the last closed minute (or hour); the buckets
+                // from there on come from the raw samples, so the trend runs up to now.
+                let period_ms = if resolution == Resolution::Hour { HOUR_MS } else { MINUTE_MS };
+                let through: Option<i64> =
+                    sqlx::query_scalar("SELECT through_ms FROM rollup_progress WHERE loop = ?1")
+                        .bind(loop_id)
+                        .fetch_optional(&self.pool)
+                        .await?;
+                let rolled = rollup::floor_to(through.unwrap_or(i64::MIN).max(since_ms), period_ms);
+                let tail_ms = (since_ms + (rolled - since_ms).max(0) / bucket_ms * bucket_ms).min(until_ms);
+                let period_s = period_ms / 1000;
+                let mut buckets =
+                    self.rollup_trend(loop_id, &input_ids, period_s, since_ms, tail_ms, bucket_ms).await?;
+                buckets.extend(self.raw_trend(loop_id, &input_ids, tail_ms, until_ms, bucket_ms).await?);
+                Ok(buckets)
+            }
+        }
+    }
+
+    async fn raw_trend(
+        &self,
+        loop_id: i64,
+        input_ids: &[Option<i64>],
+        since_ms: i64,
+        until_ms: i64,
+        bucket_ms: i64,
+    ) -> Result<Vec<TrendBucket>, HistoryError> {
+        struct Acc {
+            samples: i64,
+            objective: rollup::Stat,
+            inputs: Vec<(rollup::Stat, rollup::Stat)>,
+        }
+        let mut buckets: std::collections::BTreeMap<i64, Acc> = std::collections::BTreeMap::new();
+        let mut pages = self.block_pages(loop_id, since_ms, until_ms);
+        while let Some(page) = pages.next().await {
+            for (first_ms, layout, data) in page? {
+                // Where each asked-for input sits in this block's layout.
+                let slots: Vec<Option<usize>> = input_ids
+                    .iter()
+                    .map(|id| id.and_then(|id| layout.inputs.iter().position(|i| *i == id)))
+                    .collect();
+                for view in blocks::decode(first_ms, &layout, &data) {
+                    let view = view?;
+                    if !(since_ms..until_ms).contains(&view.at_ms) {
+                        continue;
+                    }
+                    let acc = buckets.entry((view.at_ms - since_ms) / bucket_ms).or_insert_with(|| Acc {
+                        samples: 0,
+                        objective: rollup::Stat::default(),
+                        inputs: vec![Default::default(); input_ids.len()],
+                    });
+                    acc.samples += 1;
+                    acc.objective.add(view.objective());
+                    for (k, slot) in slots.iter().enumerate() {
+                        if let Some(slot) = slot {
+                            let [applied, estimate, _] = view.input(*slot);
+                            acc.inputs[k].0.add(applied);
+                            acc.inputs[k].1.add(estimate);
+                        }
+                    }
+                }
+            }
+        }
+        Ok(buckets
+            .into_iter()
+            .map(|(bucket, acc)| TrendBucket {
+                start_ms: since_ms + bucket * bucket_ms,
+                samples: acc.samples,
+                objective: acc.objective.triple(),
+                inputs: acc.inputs.iter().map(|(a, e)| (a.triple()[1], e.triple()[1])).collect(),
+            })
+            .collect())
+    }
+
+    async fn rollup_trend(
+        &self,
+        loop_id: i64,
+        input_ids: &[Option<i64>],
+        period_s: i64,
+        since_ms: i64,
+        until_ms: i64,
+        bucket_ms: i64,
+    ) -> Result<Vec<TrendBucket>, HistoryError> {
+        let rows = sqlx::query(
+            "SELECT (start_ms - ?1) / ?2 AS bucket, sum(ticks), min(objective_min),
+                 sum(objective_mean * objective_n) / nullif(sum(objective_n), 0), max(objective_max)
+             FROM rollups WHERE loop = ?3 AND period_s = ?4 AND start_ms >= ?1 AND start_ms < ?5
+             GROUP BY bucket ORDER BY bucket",
+        )
+        .bind(since_ms)
+        .bind(bucket_ms)
+        .bind(loop_id)
+        .bind(period_s)
+        .bind(until_ms)
+        .fetch_all(&self.pool)
+        .await?;
+        let mut buckets = rows
+            .iter()
             .map(|r| {
-                let bucket: i64 = r.try_get(0)?;
-                let means = (0..inputs.len())
-                    .map(|k| Ok((r.try_get(5 + 2 * k)?, r.try_get(6 + 2 * k)?)))
-                    .collect::<Result<Vec<_>, sqlx::Error>>()?;
                 Ok(TrendBucket {
-                    start_ms: since_ms + bucket * bucket_ms.max(1),
+                    start_ms: since_ms + r.try_get::<i64, _>(0)? * bucket_ms,
                     samples: r.try_get(1)?,
                     objective: [r.try_get(2)?, r.try_get(3)?, r.try_get(4)?],
-                    inputs: means,
+                    inputs: vec![(None, None); input_ids.len()],
                 })
             })
-            .collect()
+            .collect::<Result<Vec<_>, sqlx::Error>>()?;
+        let rows = sqlx::query(
+            "SELECT (start_ms - ?1) / ?2 AS bucket, input,
+                 sum(applied_mean * applied_n) / nullif(sum(applied_n), 0),
+                 sum(estimate_mean * estimate_n) / nullif(sum(estimate_n), 0)
+             FROM rollup_inputs WHERE loop = ?3 AND period_s = ?4 AND start_ms >= ?1 AND start_ms < ?5
+             GROUP BY bucket, input",
+        )
+        .bind(since_ms)
+        .bind(bucket_ms)
+        .bind(loop_id)
+        .bind(period_s)
+        .bind(until_ms)
+        .fetch_all(&self.pool)
+        .await?;
+        for r in &rows {
+            let (start_ms, input): (i64, i64) =
+                (since_ms + r.try_get::<i64, _>(0)? * bucket_ms, r.try_get(1)?);
+            let (Some(k), Ok(b)) = (
+                input_ids.iter().position(|id| *id == Some(input)),
+                buckets.binary_search_by_key(&start_ms, |b| b.start_ms),
+            ) else {
+                continue;
+            };
+            buckets[b].inputs[k] = (r.try_get(2)?, r.try_get(3)?);
+        }
+        Ok(buckets)
     }
 
     /// Samples of one loop with `since_ms <= at < until_ms` (either optional), oldest
@@ -308,21 +504,12 @@ impl History {
         until_ms: Option<i64>,
         limit: u32,
     ) -> Result<Vec<SampleRow>, HistoryError> {
-        let rows = sqlx::query(
-            "SELECT id, at_ms, objective, state, inputs, phase, constraints FROM samples
-             WHERE loop = ?1 AND at_ms >= ?2 AND at_ms < ?3 ORDER BY at_ms, id LIMIT ?4",
-        )
-        .bind(loop_name.to_owned())
-        .bind(since_ms.unwrap_or(i64::MIN))
-        .bind(until_ms.unwrap_or(i64::MAX))
-        .bind(i64::from(limit))
-        .fetch_all(&self.pool)
-        .await?;
-        rows.iter().map(|r| sample_row(r, loop_name).map(|(_, row)| row)).collect()
+        self.sample_stream(loop_name, since_ms, until_ms, limit).try_collect().await
     }
 
     /// The same rows as [`History::samples`] as a stream, so a large export is never
-    /// built in memory. Reads a page at a time, holding no read transaction between pages.
+    /// built in memory. Reads a page of blocks at a time, holding no read transaction
+    /// between pages.
     pub fn sample_stream(
         &self,
         loop_name: &str,
@@ -330,57 +517,137 @@ impl History {
         until_ms: Option<i64>,
         limit: u32,
     ) -> BoxStream<'static, Result<SampleRow, HistoryError>> {
-        struct Page {
-            pool: SqlitePool,
-            loop_name: String,
-            /// The (at_ms, id) of the last row returned; the next page starts after it.
-            after: (i64, i64),
-            until_ms: i64,
-            remaining: u32,
-        }
-        let start = Page {
-            pool: self.pool.clone(),
-            loop_name: loop_name.to_owned(),
-            after: (since_ms.unwrap_or(i64::MIN), i64::MIN),
-            until_ms: until_ms.unwrap_or(i64::MAX),
-            remaining: limit,
-        };
-        stream::unfold(Some(start), |page| async move {
-            let mut page = page.filter(|p| p.remaining > 0)?;
-            let rows = sqlx::query(
-                "SELECT id, at_ms, objective, state, inputs, phase, constraints FROM samples
-                 WHERE loop = ?1 AND (at_ms, id) > (?2, ?3) AND at_ms < ?4 ORDER BY at_ms, id LIMIT ?5",
-            )
-            .bind(page.loop_name.clone())
-            .bind(page.after.0)
-            .bind(page.after.1)
-            .bind(page.until_ms)
-            .bind(i64::from(page.remaining.min(STREAM_PAGE_ROWS)))
-            .fetch_all(&page.pool)
-            .await;
-            let rows = match rows {
-                Ok(rows) if rows.is_empty() => return None,
-                Ok(rows) => rows,
-                Err(e) => return Some((vec![Err(HistoryError::from(e))], None)),
+        let history = self.clone();
+        let loop_name = loop_name.to_owned();
+        let (since_ms, until_ms) = (since_ms.unwrap_or(i64::MIN), until_ms.unwrap_or(i64::MAX));
+        stream::once(async move {
+            let pages = match history.name_id(&loop_name).await {
+                Ok(Some(loop_id)) => history.block_pages(loop_id, since_ms, until_ms),
+                Ok(None) => stream::empty().boxed(),
+                Err(e) => stream::once(async move { Err(e) }).boxed(),
             };
-            let mut out = Vec::with_capacity(rows.len());
-            for r in &rows {
-                match sample_row(r, &page.loop_name) {
-                    Ok((id, row)) => {
-                        page.after = (row.at_ms, id);
-                        out.push(Ok(row));
+            pages
+                .then(move |page| {
+                    let history = history.clone();
+                    async move { history.page_rows(page?, since_ms, until_ms).await }
+                })
+                .map(|rows| match rows {
+                    Ok(rows) => stream::iter(rows.into_iter().map(Ok)).boxed(),
+                    Err(e) => stream::once(async move { Err(e) }).boxed(),
+                })
+                .flatten()
+        })
+        .flatten()
+        .take(limit as usize)
+        .boxed()
+    }
+
+    /// The samples of a page of blocks with `since_ms <= at < until_ms`, names read back.
+    async fn page_rows(
+        &self,
+        page: Vec<StoredBlock>,
+        since_ms: i64,
+        until_ms: i64,
+    ) -> Result<Vec<SampleRow>, HistoryError> {
+        let mut rows = Vec::new();
+        for (first_ms, layout, data) in &page {
+            let inputs = self.names_of(&layout.inputs).await?;
+            let constraints = self.names_of(&layout.constraints).await?;
+            for view in blocks::decode(*first_ms, layout, data) {
+                let view = view?;
+                if !(since_ms..until_ms).contains(&view.at_ms) {
+                    continue;
+                }
+                let phase = match view.phase {
+                    0 => None,
+                    id => Some(self.name(id).await?.to_string()),
+                };
+                rows.push(SampleRow {
+                    at_ms: view.at_ms,
+                    objective: view.objective(),
+                    state: self.name(view.state).await?.to_string(),
+                    inputs: inputs
+                        .iter()
+                        .enumerate()
+                        .map(|(k, name)| {
+                            let [applied, estimate, gradient] = view.input(k);
+                            (name.to_string(), InputValues { applied, estimate, gradient })
+                        })
+                        .collect(),
+                    phase,
+                    constraints: constraints
+                        .iter()
+                        .enumerate()
+                        .map(|(k, name)| (name.to_string(), view.value(1 + 3 * inputs.len() + k)))
+                        .collect(),
+                });
+            }
+        }
+        Ok(rows)
+    }
+
+    /// One loop's blocks (sealed and open) that may hold samples with `since_ms <= at <
+    /// until_ms`, in key order, a page at a time.
+    fn block_pages(
+        &self,
+        loop_id: i64,
+        since_ms: i64,
+        until_ms: i64,
+    ) -> BoxStream<'static, Result<Vec<StoredBlock>, HistoryError>> {
+        let pool = self.pool.clone();
+        // A block holds samples from (about) its key to less than a span after it.
+        let (from, to) =
+            (since_ms.saturating_sub(MAX_BLOCK_SPAN_MS), until_ms.saturating_add(MAX_BLOCK_SPAN_MS));
+        stream::unfold(Some(from), move |after| {
+            let pool = pool.clone();
+            async move {
+                let after = after?;
+                let page = block_page(&pool, loop_id, after, to).await;
+                match page {
+                    Ok(page) if page.is_empty() => None,
+                    Ok(page) => {
+                        let next = page.last().map(|(key, ..)| *key);
+                        Some((Ok(page), next))
                     }
-                    Err(e) => {
-                        out.push(Err(e));
-                        return Some((out, None));
-                    }
+                    Err(e) => Some((Err(e), None)),
                 }
             }
-            page.remaining = page.remaining.saturating_sub(out.len() as u32);
-            Some((out, Some(page)))
         })
-        .flat_map(stream::iter)
         .boxed()
+    }
+
+    /// The id of `name` in the names table, if it is there.
+    async fn name_id(&self, name: &str) -> Result<Option<i64>, HistoryError> {
+        Ok(sqlx::query_scalar("SELECT id FROM names WHERE name = ?1")
+            .bind(name)
+            .fetch_optional(&self.pool)
+            .await?)
+    }
+
+    /// The name with id `id`, reading the names added since last asked when it is new.
+    async fn name(&self, id: i64) -> Result<Arc<str>, HistoryError> {
+        if let Some(name) = self.names.read().ok().and_then(|n| n.get(&id).cloned()) {
+            return Ok(name);
+        }
+        let known = self.names.read().map(|n| n.len()).unwrap_or(0);
+        let rows = sqlx::query("SELECT id, name FROM names").fetch_all(&self.pool).await?;
+        let mut fresh = HashMap::with_capacity(rows.len().max(known));
+        for r in &rows {
+            fresh.insert(r.try_get::<i64, _>(0)?, Arc::from(r.try_get::<&str, _>(1)?));
+        }
+        let name = fresh.get(&id).cloned();
+        if let Ok(mut names) = self.names.write() {
+            *names = fresh;
+        }
+        name.ok_or_else(|| HistoryError::Corrupt(format!("a block refers to name {id}, which is not stored")))
+    }
+
+    async fn names_of(&self, ids: &[i64]) -> Result<Vec<Arc<str>>, HistoryError> {
+        let mut names = Vec::with_capacity(ids.len());
+        for id in ids {
+            names.push(self.name(*id).await?);
+        }
+        Ok(names)
     }
 
     /// Events, newest first, of one loop or of all, since a time, at most `limit`.
@@ -511,10 +778,16 @@ impl History {
         Ok(done.rows_affected())
     }
 
-    /// Whether the writer's last batch was committed (for `/readyz`): cheap, and takes no
-    /// lock, so a probe can never hold up the writer.
+    /// Whether the writer's last batch was committed (for `/readyz`).
     pub fn writes_ok(&self) -> bool {
-        self.writes_ok.load(std::sync::atomic::Ordering::Relaxed)
+        self.write_failure().is_none()
+    }
+
+    /// Why history is not being written, when it is not: the last batch's error, or the
+    /// writer having stopped. The lock is held only to copy the text, so a probe never
+    /// holds up the writer.
+    pub fn write_failure(&self) -> Option<String> {
+        self.write_failure.0.lock().ok().and_then(|f| f.clone())
     }
 }
 
@@ -527,33 +800,46 @@ fn reason(e: &sqlx::Error) -> String {
     }
 }
 
-fn sample_row(r: &SqliteRow, loop_name: &str) -> Result<(i64, SampleRow), HistoryError> {
-    let (id, at_ms): (i64, i64) = (r.try_get(0)?, r.try_get(1)?);
-    let inputs: &str = r.try_get(4)?;
-    let inputs = serde_json::from_str::<InOrder<InputValues>>(inputs).map_err(|e| {
-        HistoryError::Corrupt(format!("the inputs of loop {loop_name}'s sample at {}: {e}", rfc3339(at_ms)))
-    })?;
-    let constraints: Option<&str> = r.try_get(6)?;
-    let constraints = match constraints {
-        Some(text) => serde_json::from_str::<InOrder<Option<f64>>>(text).map_err(|e| {
-            HistoryError::Corrupt(format!(
-                "the constraints of loop {loop_name}'s sample at {}: {e}",
-                rfc3339(at_ms)
-            ))
-        })?,
-        None => InOrder(Vec::new()),
-    };
-    Ok((
-        id,
-        SampleRow {
-            at_ms,
-            objective: r.try_get(2)?,
-            state: r.try_get(3)?,
-            inputs: inputs.0,
-            phase: r.try_get(5)?,
-            constraints: constraints.0,
-        },
-    ))
+/// Up to a page of loop `loop_id`'s blocks with `after < key < to`, sealed or open, in
+/// key order.
+async fn block_page(
+    pool: &SqlitePool,
+    loop_id: i64,
+    after: i64,
+    to: i64,
+) -> Result<Vec<StoredBlock>, HistoryError> {
+    let rows = sqlx::query(
+        "SELECT first_ms, layout, data FROM sample_blocks WHERE loop = ?1 AND first_ms > ?2 AND first_ms < ?3
+         ORDER BY first_ms LIMIT ?4",
+    )
+    .bind(loop_id)
+    .bind(after)
+    .bind(to)
+    .bind(PAGE_BLOCKS)
+    .fetch_all(pool)
+    .await?;
+    let open = sqlx::query(
+        "SELECT first_ms, layout, data FROM open_blocks WHERE loop = ?1 AND first_ms > ?2 AND first_ms < ?3",
+    )
+    .bind(loop_id)
+    .bind(after)
+    .bind(to)
+    .fetch_optional(pool)
+    .await?;
+    let full = rows.len() as i64 == PAGE_BLOCKS;
+    let mut page = Vec::with_capacity(rows.len() + 1);
+    for r in &rows {
+        page.push((r.try_get(0)?, Layout::decode(r.try_get(1)?)?, r.try_get(2)?));
+    }
+    if let Some(r) = open {
+        let key: i64 = r.try_get(0)?;
+        // After a full page of sealed blocks, the open block waits for the page it falls in.
+        if !full || page.last().is_some_and(|(last, ..)| key < *last) {
+            page.push((key, Layout::decode(r.try_get(1)?)?, r.try_get(2)?));
+        }
+    }
+    page.sort_by_key(|(key, ..)| *key);
+    Ok(page)
 }
 
 fn event_row(r: &SqliteRow) -> Result<EventRow, HistoryError> {

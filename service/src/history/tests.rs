@@ -18,12 +18,12 @@ fn metrics() -> Arc<Metrics> {
 
 async fn fresh() -> (tempfile::TempDir, History) {
     let dir = tempfile::tempdir().unwrap();
-    let history = History::open(&dir.path().join("history.db")).await.unwrap();
+    let history = History::open(&dir.path().join("history.db"), Retention::default()).await.unwrap();
     (dir, history)
 }
 
 fn settings(queue_capacity: usize) -> WriterSettings {
-    WriterSettings { queue_capacity, retention_days: 30 }
+    WriterSettings { queue_capacity, disk_free_floor_bytes: 0 }
 }
 
 fn sample(loop_name: &str, at_ms: i64, inputs: &[(&str, f64, f64, f64)]) -> SampleRecord {
@@ -35,7 +35,7 @@ fn sample(loop_name: &str, at_ms: i64, inputs: &[(&str, f64, f64, f64)]) -> Samp
         tick: at_ms.max(0) as u64,
         at_ms,
         objective: Some(at_ms as f64 / 1000.0),
-        state: "seeking",
+        state: "seeking".into(),
         inputs: inputs
             .iter()
             .map(|&(name, applied, estimate, gradient)| InputSample {
@@ -60,7 +60,13 @@ fn event(at_ms: i64, loop_name: Option<&str>, kind: &str, actor: &str) -> EventR
 
 async fn count(history: &History, table: &str) -> i64 {
     let sql = match table {
-        "samples" => "SELECT count(*) FROM samples",
+        "samples" => {
+            "SELECT coalesce(sum(samples), 0) FROM (SELECT samples FROM sample_blocks
+                                                    UNION ALL SELECT samples FROM open_blocks)"
+        }
+        "blocks" => "SELECT count(*) FROM sample_blocks",
+        "rollups" => "SELECT count(*) FROM rollups",
+        "minute rollups" => "SELECT count(*) FROM rollups WHERE period_s = 60",
         "events" => "SELECT count(*) FROM events",
         _ => "SELECT count(*) FROM last_estimates",
     };
@@ -71,7 +77,7 @@ async fn count(history: &History, table: &str) -> i64 {
 async fn opening_creates_the_file_and_missing_parent_directories_in_wal_mode() {
     let dir = tempfile::tempdir().unwrap();
     let path = dir.path().join("var/lib/ridgeline/history.db");
-    let history = History::open(&path).await.unwrap();
+    let history = History::open(&path, Retention::default()).await.unwrap();
     assert!(path.is_file());
     let (_, mut writer) = history.writer(settings(10), None);
     // The pool and the writer's own connection both run with the crash-safe settings.
@@ -87,7 +93,7 @@ async fn opening_creates_the_file_and_missing_parent_directories_in_wal_mode() {
     }
     // Opening again applies no migration twice.
     drop(history);
-    History::open(&path).await.unwrap();
+    History::open(&path, Retention::default()).await.unwrap();
 }
 
 #[tokio::test]
@@ -98,7 +104,7 @@ async fn a_path_that_cannot_be_opened_is_an_error_naming_the_path() {
     let not_sqlite = dir.path().join("notes.db");
     std::fs::write(&not_sqlite, "x".repeat(4096)).unwrap();
     for path in [dir.path().to_owned(), file.join("history.db"), not_sqlite] {
-        let e = History::open(&path).await.unwrap_err();
+        let e = History::open(&path, Retention::default()).await.unwrap_err();
         let text = e.to_string();
         assert!(matches!(e, HistoryError::Open { .. }), "{path:?}: {e:?}");
         assert!(
@@ -152,11 +158,12 @@ async fn constraint_values_come_back_in_config_order_with_unknown_ones_as_none()
     let rows = history.samples("boiler", None, None, 10).await.unwrap();
     assert_eq!(rows[0].constraints, [("stack_temp".to_owned(), Some(212.5)), ("co".to_owned(), None)]);
     assert!(rows[1].constraints.is_empty(), "a loop without constraints stores none");
-    let raw: Option<String> = sqlx::query_scalar("SELECT constraints FROM samples WHERE at_ms = 2000")
-        .fetch_one(&history.pool)
-        .await
-        .unwrap();
-    assert_eq!(raw, None, "NULL, not an empty object");
+    let layout: Vec<u8> =
+        sqlx::query_scalar("SELECT layout FROM open_blocks").fetch_one(&history.pool).await.unwrap();
+    assert!(
+        blocks::Layout::decode(&layout).unwrap().constraints.is_empty(),
+        "a block of its own, without any"
+    );
 }
 
 #[tokio::test]
@@ -205,15 +212,25 @@ async fn non_finite_values_are_stored_as_null_and_come_back_as_none() {
         InputValues { applied: Some(1.5), estimate: Some(2.5), gradient: Some(-0.5) }
     );
     assert_eq!((rows[1].objective, rows[1].inputs.len()), (None, 0));
-    let stored: (Option<f64>, String) =
-        sqlx::query_as("SELECT objective, inputs FROM samples ORDER BY at_ms LIMIT 1")
+    let (layout, data): (Vec<u8>, Vec<u8>) =
+        sqlx::query_as("SELECT layout, data FROM sample_blocks ORDER BY first_ms LIMIT 1")
             .fetch_one(&history.pool)
             .await
             .unwrap();
-    assert_eq!(stored.0, None);
+    let layout = blocks::Layout::decode(&layout).unwrap();
+    let stored = blocks::decode(1000, &layout, &data).next().unwrap().unwrap();
+    let bits: Vec<_> = (0..7).map(|k| stored.value(k).map(f64::to_bits)).collect();
     assert_eq!(
-        stored.1,
-        r#"{"u":{"applied":null,"estimate":null,"gradient":null},"v":{"applied":1.5,"estimate":2.5,"gradient":-0.5}}"#
+        bits,
+        [
+            None,
+            None,
+            None,
+            None,
+            Some(1.5_f64.to_bits()),
+            Some(2.5_f64.to_bits()),
+            Some((-0.5_f64).to_bits())
+        ]
     );
     // A NaN estimate never becomes a last estimate.
     assert_eq!(history.last_estimates("boiler").await.unwrap().len(), 1);
@@ -333,12 +350,12 @@ async fn a_filling_queue_thins_each_loop_evenly_before_it_is_full() {
 async fn step_writes_a_whole_batch_in_one_transaction_and_keeps_a_failed_one_for_the_next_try() {
     let (_dir, history) = fresh().await;
     let metrics = metrics();
-    let (sender, mut writer) = history.writer(settings(30_000), Some(metrics.clone()));
-    for k in 0..12_345 {
+    let (sender, mut writer) = history.writer(settings(120_000), Some(metrics.clone()));
+    for k in 0..49_380 {
         sender.sample(sample(["boiler", "chiller", "dryer"][k % 3], k as i64, &[("u", 1.0, k as f64, 0.0)]));
     }
     sender.event(event(1, Some("boiler"), "mode", "alice"));
-    assert_eq!(metrics.history_queue_depth.get(), 12_345);
+    assert_eq!(metrics.history_queue_depth.get(), 49_380);
 
     // The event's insert fails after the samples of its batch were inserted: the whole
     // batch rolls back, and is kept.
@@ -349,19 +366,19 @@ async fn step_writes_a_whole_batch_in_one_transaction_and_keeps_a_failed_one_for
     let e = writer.step().await.unwrap().unwrap_err();
     assert!(e.to_string().contains("refused"), "{e}");
     assert_eq!((count(&history, "samples").await, count(&history, "events").await), (0, 0));
-    assert_eq!(metrics.history_queue_depth.get(), 12_345 - 5_000);
+    assert_eq!(metrics.history_queue_depth.get(), 29_380);
     sqlx::query("DROP TRIGGER refuse").execute(&history.pool).await.unwrap();
 
-    assert_eq!(writer.step().await.unwrap().unwrap(), Written { samples: 5_000, events: 1 });
-    assert_eq!((count(&history, "samples").await, count(&history, "events").await), (5_000, 1));
-    assert_eq!(metrics.history_queue_depth.get(), 7_345);
-    assert_eq!(writer.step().await.unwrap().unwrap(), Written { samples: 5_000, events: 0 });
-    assert_eq!(writer.step().await.unwrap().unwrap(), Written { samples: 2_345, events: 0 });
-    assert_eq!(count(&history, "samples").await, 12_345);
-    assert_eq!(metrics.history_rows.get(), 12_346);
+    assert_eq!(writer.step().await.unwrap().unwrap(), Written { samples: 20_000, events: 1 });
+    assert_eq!((count(&history, "samples").await, count(&history, "events").await), (20_000, 1));
+    assert_eq!(metrics.history_queue_depth.get(), 29_380);
+    assert_eq!(writer.step().await.unwrap().unwrap(), Written { samples: 20_000, events: 0 });
+    assert_eq!(writer.step().await.unwrap().unwrap(), Written { samples: 9_380, events: 0 });
+    assert_eq!(count(&history, "samples").await, 49_380);
+    assert_eq!(metrics.history_rows.get(), 49_381);
     assert_eq!(metrics.history_queue_depth.get(), 0);
     let dryer = history.last_estimates("dryer").await.unwrap();
-    assert_eq!(dryer, [StoredEstimate { input: "u".into(), estimate: 12_344.0, at_ms: 12_344 }]);
+    assert_eq!(dryer, [StoredEstimate { input: "u".into(), estimate: 49_379.0, at_ms: 49_379 }]);
 
     // With every sender gone and nothing queued, there is nothing more to step.
     drop(sender);
@@ -401,10 +418,12 @@ async fn run_retries_a_failed_batch_until_it_is_written() {
     let (_dir, history) = fresh().await;
     let metrics = metrics();
     let (sender, writer) = history.writer(settings(100), Some(metrics.clone()));
-    sqlx::query("CREATE TRIGGER refuse BEFORE INSERT ON samples BEGIN SELECT RAISE(ABORT, 'refused'); END")
-        .execute(&history.pool)
-        .await
-        .unwrap();
+    sqlx::query(
+        "CREATE TRIGGER refuse BEFORE INSERT ON open_blocks BEGIN SELECT RAISE(ABORT, 'refused'); END",
+    )
+    .execute(&history.pool)
+    .await
+    .unwrap();
     let now = now_ms();
     for k in 0..10 {
         sender.sample(sample("boiler", now + k, &[]));
@@ -432,10 +451,12 @@ async fn a_batch_that_keeps_failing_gives_up_its_samples_after_five_tries_but_ke
     let (_dir, history) = fresh().await;
     let metrics = metrics();
     let (sender, mut writer) = history.writer(settings(100), Some(metrics.clone()));
-    sqlx::query("CREATE TRIGGER refuse BEFORE INSERT ON samples BEGIN SELECT RAISE(ABORT, 'refused'); END")
-        .execute(&history.pool)
-        .await
-        .unwrap();
+    sqlx::query(
+        "CREATE TRIGGER refuse BEFORE INSERT ON open_blocks BEGIN SELECT RAISE(ABORT, 'refused'); END",
+    )
+    .execute(&history.pool)
+    .await
+    .unwrap();
     for k in 0..10 {
         sender.sample(sample("boiler", k, &[]));
     }
@@ -518,22 +539,47 @@ async fn run_cancelled_before_it_starts_still_writes_what_was_queued() {
     assert_eq!((count(&history, "samples").await, count(&history, "events").await), (50, 1));
 }
 
+/// Loop `name`'s samples, one per second from `from_ms` for `n` seconds, written.
+async fn record(writer: &mut Writer, sender: &HistorySender, name: &str, from_ms: i64, n: i64) {
+    for start in (0..n).step_by(4000) {
+        for k in start..n.min(start + 4000) {
+            let mut s = sample(name, from_ms + k * 1000, &[("u", k as f64, 2.0 * k as f64, 0.0)]);
+            s.objective = Some((k % 60) as f64);
+            assert!(sender.sample(s));
+        }
+        writer.step().await.unwrap().unwrap();
+    }
+}
+
+async fn roll_up_all(writer: &mut Writer, now: i64) {
+    while writer.roll_up_step(now).await.unwrap() {}
+}
+
 #[tokio::test]
-async fn retention_deletes_samples_older_than_retention_days_and_keeps_newer_ones_and_all_events() {
+async fn retention_deletes_samples_once_rolled_up_and_rollups_past_their_own_retention_never_events() {
     let (_dir, history) = fresh().await;
     let (sender, mut writer) = history.writer(settings(10_000), None);
     let now = 400 * DAY_MS;
-    let old = now - 30 * DAY_MS - 1;
-    for k in 0..4_500 {
-        sender.sample(sample(["boiler", "chiller", "dryer"][k % 3], old - k as i64, &[("u", 1.0, 1.0, 0.0)]));
+    let old = now - 30 * DAY_MS - 3 * 3_600_000;
+    for name in ["boiler", "chiller", "dryer"] {
+        record(&mut writer, &sender, name, old, 7_200).await;
+        record(&mut writer, &sender, name, now - 3_600_000, 10).await;
     }
     for k in 0..10 {
-        sender.sample(sample("boiler", now - 30 * DAY_MS + k, &[]));
         sender.event(event(old - k * DAY_MS, Some("boiler"), "mode", "system"));
     }
     writer.step().await.unwrap().unwrap();
+    assert_eq!(count(&history, "samples").await, 3 * 7_210);
 
-    // Small batches: each statement deletes at most 2,000 rows.
+    // Nothing is deleted before it is rolled up.
+    assert_eq!(writer.prune(now).await.unwrap(), 0);
+    roll_up_all(&mut writer, now).await;
+    // Per loop, two hours of minutes and their two hours, and the minute of the 10 recent
+    // samples and its hour.
+    assert_eq!(count(&history, "rollups").await, 3 * (120 + 2 + 1 + 1));
+
+    // Small batches: each statement deletes at most 500 blocks.
+    let blocks = count(&history, "blocks").await as u64;
     let mut deleted = Vec::new();
     loop {
         match writer.prune(now).await.unwrap() {
@@ -541,68 +587,205 @@ async fn retention_deletes_samples_older_than_retention_days_and_keeps_newer_one
             n => deleted.push(n),
         }
     }
-    assert_eq!(deleted, [2_000, 2_000, 500]);
-    assert_eq!((count(&history, "samples").await, count(&history, "events").await), (10, 10));
+    assert!(deleted.iter().all(|n| *n <= 500), "{deleted:?}");
+    assert_eq!(deleted.iter().sum::<u64>(), blocks);
+    assert_eq!(count(&history, "samples").await, 3 * 10);
     let kept = history.samples("boiler", None, None, 100).await.unwrap();
     assert!(kept.iter().all(|r| r.at_ms >= now - 30 * DAY_MS));
+    assert_eq!(count(&history, "rollups").await, 3 * 124, "rollups outlive the samples");
 
-    // `run` prunes once at start.
-    for k in 0..100 {
-        sender.sample(sample("dryer", old - k, &[]));
-    }
-    writer.step().await.unwrap().unwrap();
-    let (sender2, writer2) = history.writer(WriterSettings { queue_capacity: 10, retention_days: 1 }, None);
-    sender2.sample(sample("dryer", now_ms(), &[]));
-    let cancel = CancellationToken::new();
-    let task = tokio::spawn(writer2.run(cancel.clone()));
-    let deadline = tokio::time::Instant::now() + Duration::from_secs(10);
-    while count(&history, "samples").await != 1 {
-        assert!(tokio::time::Instant::now() < deadline, "run never pruned");
-        tokio::time::sleep(Duration::from_millis(10)).await;
-    }
-    cancel.cancel();
-    task.await.unwrap();
+    // Two years on, the rollups go too; events stay.
+    while writer.prune(now + 731 * DAY_MS).await.unwrap() > 0 {}
+    assert_eq!(count(&history, "rollups").await, 0);
     assert_eq!(count(&history, "events").await, 10);
 }
 
 #[tokio::test]
-async fn retention_uses_the_loop_index_rather_than_scanning_the_table() {
+async fn run_rolls_up_what_an_earlier_run_left_and_prunes_once_at_start() {
+    let (_dir, history) = fresh().await;
+    let (sender, mut writer) = history.writer(settings(10_000), None);
+    let now = now_ms();
+    let old = (now - 31 * DAY_MS) / 60_000 * 60_000;
+    record(&mut writer, &sender, "dryer", old, 600).await;
+    drop((sender, writer));
+
+    let (sender, writer) = history.writer(settings(10), None);
+    sender.sample(sample("dryer", now, &[]));
+    let cancel = CancellationToken::new();
+    let task = tokio::spawn(writer.run(cancel.clone()));
+    let deadline = tokio::time::Instant::now() + Duration::from_secs(20);
+    while count(&history, "samples").await != 1 || count(&history, "minute rollups").await != 10 {
+        assert!(
+            tokio::time::Instant::now() < deadline,
+            "run never rolled up and pruned: {} samples, {} minutes",
+            count(&history, "samples").await,
+            count(&history, "minute rollups").await
+        );
+        tokio::time::sleep(Duration::from_millis(10)).await;
+    }
+    cancel.cancel();
+    task.await.unwrap();
+}
+
+#[tokio::test]
+async fn retention_goes_through_the_block_key_rather_than_scanning_the_table() {
     let (_dir, history) = fresh().await;
     let plan: Vec<String> =
         sqlx::query(sqlx::AssertSqlSafe(format!("EXPLAIN QUERY PLAN {}", writer::PRUNE_SQL)))
             .bind(0_i64)
-            .bind(2000_i64)
+            .bind(500_i64)
             .fetch_all(&history.pool)
             .await
             .unwrap()
             .iter()
             .map(|r| r.get::<String, _>(3))
             .collect();
-    // The outer DELETE finds each row by id; nothing walks the whole table.
-    assert!(plan.iter().all(|step| !step.starts_with("SCAN samples")), "{plan:#?}");
     assert!(
-        plan.iter().any(|step| step == "SEARCH samples USING INTEGER PRIMARY KEY (rowid=?)"),
+        plan.iter().all(|step| !step.starts_with("SCAN b") && !step.starts_with("SCAN sample_blocks")),
         "{plan:#?}"
     );
     assert!(
-        plan.iter().any(|step| step.contains("USING COVERING INDEX samples_loop_at (loop=? AND at_ms<?)")),
+        plan.iter().any(|step| step.contains("SEARCH b USING PRIMARY KEY (loop=? AND first_ms<?)")),
         "{plan:#?}"
     );
 }
 
-#[test]
-fn inputs_are_written_as_compact_json_in_config_order() {
-    let inputs = [
-        InputSample { name: "b \"quoted\"".into(), applied: 1.0, estimate: 0.1 + 0.2, gradient: -1e-300 },
-        InputSample { name: "a".into(), applied: f64::NAN, estimate: 1e21, gradient: 0.0 },
-    ];
-    let text = writer::inputs_json(&inputs);
+#[tokio::test]
+async fn rollups_hold_each_minutes_and_hours_min_mean_and_max_and_trends_from_them_match_the_raw_samples() {
+    let (_dir, history) = fresh().await;
+    let (sender, mut writer) = history.writer(settings(10_000), None);
+    let start = 1_000 * 3_600_000;
+    // Objective k % 60 and applied k, estimate 2k: every minute the same objective.
+    record(&mut writer, &sender, "boiler", start, 7_200).await;
+    roll_up_all(&mut writer, start + 3 * 3_600_000).await;
+    assert_eq!(count(&history, "minute rollups").await, 120);
+    assert_eq!(count(&history, "rollups").await, 122);
+    let row: (i64, i64, f64, f64, f64) = sqlx::query_as(
+        "SELECT ticks, faults, objective_min, objective_mean, objective_max FROM rollups
+         WHERE period_s = 60 AND start_ms = ?1",
+    )
+    .bind(start + 7 * 60_000)
+    .fetch_one(&history.pool)
+    .await
+    .unwrap();
+    assert_eq!(row, (60, 0, 0.0, 29.5, 59.0));
+    let applied: (f64, f64, f64, f64) = sqlx::query_as(
+        "SELECT applied_min, applied_mean, applied_max, estimate_mean FROM rollup_inputs
+         WHERE period_s = 3600 AND start_ms = ?1",
+    )
+    .bind(start + 3_600_000)
+    .fetch_one(&history.pool)
+    .await
+    .unwrap();
+    assert_eq!(applied, (3600.0, 5399.5, 7199.0, 10799.0));
+
+    let inputs = ["u".to_owned()];
+    let until = start + 7_200_000;
+    for (bucket, resolution) in [(600_000, Resolution::Minute), (3_600_000, Resolution::Hour)] {
+        let raw = history.trend("boiler", &inputs, start, until, bucket, Resolution::Raw).await.unwrap();
+        let rolled = history.trend("boiler", &inputs, start, until, bucket, resolution).await.unwrap();
+        assert_eq!(raw.len(), (7_200_000 / bucket) as usize);
+        assert_eq!(rolled.len(), raw.len(), "{resolution:?}");
+        for (r, b) in raw.iter().zip(&rolled) {
+            assert_eq!((r.start_ms, r.samples), (b.start_ms, b.samples));
+            assert_eq!((r.objective[0], r.objective[2]), (b.objective[0], b.objective[2]));
+            let close = |x: Option<f64>, y: Option<f64>| {
+                (x.unwrap() - y.unwrap()).abs() <= 1e-9 * x.unwrap().abs().max(1.0)
+            };
+            assert!(close(r.objective[1], b.objective[1]), "{r:?} {b:?}");
+            assert!(
+                close(r.inputs[0].0, b.inputs[0].0) && close(r.inputs[0].1, b.inputs[0].1),
+                "{r:?} {b:?}"
+            );
+        }
+    }
+}
+
+#[tokio::test]
+async fn a_restarted_writer_fills_the_block_it_left_and_a_clock_set_back_never_overwrites_a_block() {
+    let (_dir, history) = fresh().await;
+    let (sender, mut writer) = history.writer(settings(100), None);
+    for k in 0..10 {
+        sender.sample(sample("boiler", 1_000_000 + k * 100, &[("u", k as f64, 0.0, 0.0)]));
+    }
+    writer.step().await.unwrap().unwrap();
+    drop((sender, writer));
+    let (sender, mut writer) = history.writer(settings(100), None);
+    for k in 10..20 {
+        sender.sample(sample("boiler", 1_000_000 + k * 100, &[("u", k as f64, 0.0, 0.0)]));
+    }
+    writer.step().await.unwrap().unwrap();
     assert_eq!(
-        text,
-        r#"{"b \"quoted\"":{"applied":1.0,"estimate":0.30000000000000004,"gradient":-1e-300},"a":{"applied":null,"estimate":1e+21,"gradient":0.0}}"#
+        (count(&history, "blocks").await, count(&history, "samples").await),
+        (0, 20),
+        "one open block"
     );
-    let back: InOrder<InputValues> = serde_json::from_str(&text).unwrap();
-    assert_eq!(back.0[0].0, "b \"quoted\"");
-    assert_eq!(back.0[0].1.estimate, Some(0.1 + 0.2));
-    assert_eq!(back.0[1].1.estimate, Some(1e21));
+    // The clock set back by a second, twice: new blocks, each under a key of its own.
+    for round in 0..2 {
+        for k in 0..5 {
+            sender.sample(sample("boiler", 1_000_000 + k * 100, &[("u", 100.0 + round as f64, 0.0, 0.0)]));
+        }
+        writer.step().await.unwrap().unwrap();
+    }
+    assert_eq!(count(&history, "samples").await, 30);
+    let rows = history.samples("boiler", None, None, 100).await.unwrap();
+    assert_eq!(rows.len(), 30);
+    let applied: Vec<f64> = rows.iter().map(|r| r.inputs[0].1.applied.unwrap()).collect();
+    assert_eq!(applied.iter().filter(|a| **a == 100.0).count(), 5);
+    assert_eq!(applied.iter().filter(|a| **a == 101.0).count(), 5);
+}
+
+#[tokio::test]
+async fn rows_of_the_old_layout_are_converted_into_blocks_with_every_value_kept() {
+    let (_dir, history) = fresh().await;
+    sqlx::raw_sql(
+        "CREATE TABLE samples (id INTEGER PRIMARY KEY, loop TEXT NOT NULL, at_ms INTEGER NOT NULL,
+             objective REAL, state TEXT NOT NULL, inputs TEXT NOT NULL, phase TEXT, constraints TEXT) STRICT;
+         INSERT INTO samples (loop, at_ms, objective, state, inputs, phase, constraints) VALUES
+             ('dryer', 3000, 7.5, 'seeking', '{\"t\":{\"applied\":180.25,\"estimate\":180.0,\"gradient\":-0.001}}', 'averaging', NULL),
+             ('boiler', 2000, NULL, 'fallback', '{\"o2\":{\"applied\":null,\"estimate\":2.5,\"gradient\":null}}', NULL,
+              '{\"co\":null,\"stack\":212.5}'),
+             ('boiler', 1000, 85.125, 'seeking', '{\"o2\":{\"applied\":2.55,\"estimate\":2.5}}', NULL, '{\"co\":120.0,\"stack\":211.0}');",
+    )
+    .execute(&history.pool)
+    .await
+    .unwrap();
+    assert_eq!(legacy::convert(&history.pool).await.unwrap(), 3);
+    let exists: bool =
+        sqlx::query_scalar("SELECT EXISTS (SELECT 1 FROM sqlite_schema WHERE name = 'samples')")
+            .fetch_one(&history.pool)
+            .await
+            .unwrap();
+    assert!(!exists, "the old table is dropped");
+    let boiler = history.samples("boiler", None, None, 10).await.unwrap();
+    assert_eq!(boiler.iter().map(|r| r.at_ms).collect::<Vec<_>>(), [1000, 2000]);
+    assert_eq!((boiler[0].objective, boiler[0].state.as_str()), (Some(85.125), "seeking"));
+    assert_eq!(
+        boiler[0].inputs,
+        [("o2".to_owned(), InputValues { applied: Some(2.55), estimate: Some(2.5), gradient: None })]
+    );
+    assert_eq!(boiler[0].constraints, [("co".to_owned(), Some(120.0)), ("stack".to_owned(), Some(211.0))]);
+    assert_eq!((boiler[1].objective, boiler[1].state.as_str()), (None, "fallback"));
+    assert_eq!(boiler[1].constraints, [("co".to_owned(), None), ("stack".to_owned(), Some(212.5))]);
+    let dryer = history.samples("dryer", None, None, 10).await.unwrap();
+    assert_eq!((dryer[0].phase.as_deref(), dryer[0].inputs[0].1.applied), (Some("averaging"), Some(180.25)));
+    // Nothing to do the second time.
+    assert_eq!(legacy::convert(&history.pool).await.unwrap(), 0);
+}
+
+#[tokio::test]
+async fn a_trend_from_rollups_reaches_the_present_from_raw_samples_past_the_last_closed_minute() {
+    let (_dir, history) = fresh().await;
+    let (sender, mut writer) = history.writer(settings(10_000), None);
+    let start = 1_000 * 3_600_000;
+    record(&mut writer, &sender, "boiler", start, 150).await;
+    // The writer saw minute 2 begin: minutes 0 and 1 are closed and rolled up, 2 is open.
+    roll_up_all(&mut writer, start).await;
+    assert_eq!(count(&history, "minute rollups").await, 2);
+    let inputs = ["u".to_owned()];
+    let trend =
+        history.trend("boiler", &inputs, start, start + 180_000, 60_000, Resolution::Minute).await.unwrap();
+    let samples: Vec<i64> = trend.iter().map(|b| b.samples).collect();
+    assert_eq!(samples, [60, 60, 30]);
+    assert_eq!(trend[2].objective, [Some(0.0), Some(14.5), Some(29.0)]);
 }

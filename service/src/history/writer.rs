@@ -1,29 +1,40 @@
 //! The one writer: a bounded queue of samples and an unbounded one of events, drained in
-//! batched transactions on a connection of its own, with retention between batches.
+//! batched transactions on a connection of its own, with rollups, retention and a watch on
+//! the disk between batches.
 
 use std::collections::HashMap;
 use std::fmt;
+use std::path::{Path, PathBuf};
 use std::sync::{Arc, LazyLock};
 use std::time::Duration;
 
-use sqlx::query::Query;
-use sqlx::sqlite::{Sqlite, SqliteArguments, SqliteConnectOptions, SqliteConnection};
+use sqlx::sqlite::{SqliteConnectOptions, SqliteConnection};
 use sqlx::{ConnectOptions, Connection};
 use tokio::sync::mpsc::{self, error::TrySendError};
 use tokio::time::Instant;
 use tokio_util::sync::CancellationToken;
 
-use super::{EventRecord, HistoryError, InputSample, SampleRecord, now_ms, rfc3339};
+use super::packing::{Packed, Packer};
+use super::rollup::{self, MINUTE_MS};
+use super::{EventRecord, HistoryError, Retention, SampleRecord, WriteFailure, now_ms, rfc3339};
 use crate::metrics::Metrics;
 
-/// Most samples written in one transaction; more wait for the next one.
-const MAX_BATCH_SAMPLES: usize = 5000;
+/// Most samples written in one transaction (about 750 KB of blocks at one input); more
+/// wait for the next one. Under a backlog the batches are this large, and each commit's
+/// fixed cost is spread over them.
+pub const MAX_BATCH_SAMPLES: usize = 20_000;
 const MAX_BATCH_EVENTS: usize = 1000;
 /// Rows per multi-row `INSERT`: one statement per 100 rows costs far less than one per
 /// row, and 500 parameters stay well inside SQLite's limit of 32,766.
 const ROWS_PER_STATEMENT: usize = 100;
-/// Rows per retention `DELETE`, each its own short transaction.
-const PRUNE_BATCH_ROWS: i64 = 2000;
+/// Rows per retention `DELETE`, each its own short transaction (a sample block holds
+/// about 25 samples).
+const PRUNE_BATCH_ROWS: i64 = 500;
+/// Most minutes of one loop rolled up in one step, so catching up on a long history never
+/// holds up a batch for long.
+const ROLLUP_STEP_MINUTES: i64 = 60;
+/// How often the database's size and the free space under it are looked at.
+const DISK_EVERY: Duration = Duration::from_secs(10);
 const PRUNE_EVERY: Duration = Duration::from_secs(5 * 60);
 const WRITE_ATTEMPTS: u32 = 5;
 /// How long the flush at shutdown may take.
@@ -31,32 +42,23 @@ const FLUSH_LIMIT: Duration = Duration::from_secs(10);
 const FIRST_RETRY_DELAY: Duration = Duration::from_millis(250);
 const MS_PER_DAY: i64 = 86_400_000;
 
-/// Deletes up to `?2` samples older than `?1`, per loop through the (loop, at_ms) index:
-/// the recursive part lists the loops with one index seek each (SQLite's "skip-scan"
-/// idiom), so finding nothing to delete never scans the table.
-pub(super) const PRUNE_SQL: &str = "DELETE FROM samples WHERE id IN (
-    WITH RECURSIVE loops(name) AS (
-        SELECT min(loop) FROM samples
-        UNION ALL
-        SELECT (SELECT min(loop) FROM samples WHERE loop > loops.name) FROM loops
-        WHERE loops.name IS NOT NULL
-    )
-    SELECT samples.id FROM loops CROSS JOIN samples
-    WHERE samples.loop = loops.name AND samples.at_ms < ?1
+/// Deletes up to `?2` sample blocks older than `?1`, per loop through the blocks' key,
+/// and only blocks wholly rolled up: a block's samples are less than a minute after its key.
+pub(super) const PRUNE_SQL: &str = "DELETE FROM sample_blocks WHERE (loop, first_ms) IN (
+    SELECT b.loop, b.first_ms FROM rollup_progress p CROSS JOIN sample_blocks b
+    WHERE b.loop = p.loop AND b.first_ms < min(?1, p.through_ms) - 60000
     LIMIT ?2
 )";
+/// Deletes up to `?2` rollup rows older than `?1`.
+const PRUNE_ROLLUPS_SQL: &str = "DELETE FROM rollups WHERE (loop, period_s, start_ms) IN (
+    SELECT r.loop, r.period_s, r.start_ms FROM names n CROSS JOIN rollups r
+    WHERE r.loop = n.id AND r.period_s IN (60, 3600) AND r.start_ms < ?1 LIMIT ?2
+)";
+const PRUNE_ROLLUP_INPUTS_SQL: &str = "DELETE FROM rollup_inputs WHERE (loop, period_s, start_ms, input) IN (
+    SELECT r.loop, r.period_s, r.start_ms, r.input FROM names n CROSS JOIN rollup_inputs r
+    WHERE r.loop = n.id AND r.period_s IN (60, 3600) AND r.start_ms < ?1 LIMIT ?2
+)";
 
-/// `INSERT_SAMPLES[n - 1]` inserts `n` samples. Every size is its own prepared statement,
-/// cached on the writer's connection. `OR FAIL` rather than the default `OR ABORT` spares
-/// SQLite a statement journal (a copy of every page a statement touches, so that it can be
-/// undone alone): a failed row fails the whole transaction anyway, which rolls back.
-static INSERT_SAMPLES: LazyLock<Vec<String>> = LazyLock::new(|| {
-    multi_row(
-        "INSERT OR FAIL INTO samples (loop, at_ms, objective, state, inputs, phase, constraints) VALUES ",
-        "(?, ?, ?, ?, ?, ?, ?)",
-        "",
-    )
-});
 /// `UPSERT_ESTIMATES[n - 1]` upserts `n` last estimates, never moving one back in time.
 static UPSERT_ESTIMATES: LazyLock<Vec<String>> = LazyLock::new(|| {
     multi_row(
@@ -74,18 +76,19 @@ fn multi_row(head: &str, row: &str, tail: &str) -> Vec<String> {
 /// One input's latest finite estimate in a batch: (input, estimate, at_ms).
 type Latest = (Arc<str>, f64, i64);
 
-/// How the writer queues and keeps history.
+/// How the writer queues history and watches the disk.
 #[derive(Debug, Clone)]
 pub struct WriterSettings {
     /// Samples that may wait to be written; more are dropped and counted. At least 1.
     pub queue_capacity: usize,
-    /// Samples older than this are deleted; 0 keeps them forever. Events are kept forever.
-    pub retention_days: u32,
+    /// Below this many free bytes on the database's file system: a `disk_low` event and a
+    /// warning.
+    pub disk_free_floor_bytes: u64,
 }
 
 impl Default for WriterSettings {
     fn default() -> Self {
-        WriterSettings { queue_capacity: 10_000, retention_days: 90 }
+        WriterSettings { queue_capacity: 10_000, disk_free_floor_bytes: 1024 * 1024 * 1024 }
     }
 }
 
@@ -159,21 +162,48 @@ pub struct Writer {
     /// each batch, so that history goes on even if one of them is what the database
     /// refuses.
     carried: Vec<EventRecord>,
-    retention_days: u32,
+    retention: Retention,
     metrics: Option<Arc<Metrics>>,
-    /// Shared with [`super::History::writes_ok`]: whether the last batch was committed.
-    writes_ok: Arc<std::sync::atomic::AtomicBool>,
+    /// Shared with [`super::History::write_failure`]: why the last batch was not committed.
+    write_failure: WriteFailure,
     /// The batch's latest finite estimates, by loop.
     latest: HashMap<Arc<str>, Vec<Latest>>,
-    /// Each state's text shared, so binding it allocates nothing.
-    states: Vec<Arc<str>>,
+    /// The loops' open blocks and the names, as committed.
+    packer: Packer,
+    rollups: Rollups,
+    disk: Disk,
+}
+
+/// Which minutes of which loops wait to be rolled up.
+#[derive(Debug, Default)]
+struct Rollups {
+    /// Per loop id: the end of its rolled-up minutes, once known.
+    through: HashMap<i64, i64>,
+    /// Per loop id: the start of its newest minute, which is still open; the minutes
+    /// before it are closed.
+    open_minute: HashMap<i64, i64>,
+    /// Whether the loops already in the database at start have been looked up.
+    caught_up: bool,
+    /// The id of the `fallback` state, once named.
+    fault_state: Option<i64>,
+    /// After a failed step, when to try again.
+    paused_until: Option<Instant>,
+}
+
+/// The database's files and the file system under them.
+#[derive(Debug)]
+struct Disk {
+    path: PathBuf,
+    floor_bytes: u64,
+    /// Whether free space is under the floor (a `disk_low` event has been sent).
+    low: bool,
 }
 
 /// A writer that is gone (its task ended, or panicked) writes nothing more: `/readyz`
 /// says so.
 impl Drop for Writer {
     fn drop(&mut self) {
-        self.writes_ok.store(false, std::sync::atomic::Ordering::Relaxed);
+        self.write_failure.set(Some("the history writer has stopped".into()));
     }
 }
 
@@ -189,34 +219,38 @@ impl fmt::Debug for Writer {
 
 pub(super) fn channel(
     options: SqliteConnectOptions,
+    path: &Path,
+    retention: Retention,
     settings: WriterSettings,
     metrics: Option<Arc<Metrics>>,
-    writes_ok: Arc<std::sync::atomic::AtomicBool>,
+    write_failure: WriteFailure,
 ) -> (HistorySender, Writer) {
     let (samples, samples_rx) = mpsc::channel(settings.queue_capacity.max(1));
     let (events, events_rx) = mpsc::unbounded_channel();
     let sender = HistorySender { samples, events, metrics: metrics.clone() };
     let writer = Writer {
-        // Room for every multi-row statement size of both tables, and the rest.
-        options: options.statement_cache_capacity(2 * ROWS_PER_STATEMENT + 16),
+        // Room for every multi-row statement size of the estimates and blocks, and the rest.
+        options: options.statement_cache_capacity(ROWS_PER_STATEMENT + super::packing::STATEMENTS + 32),
         conn: None,
         samples_rx,
         events_rx,
         samples: Vec::new(),
         events: Vec::new(),
         carried: Vec::new(),
-        retention_days: settings.retention_days,
+        retention,
         metrics,
-        writes_ok,
+        write_failure,
         latest: HashMap::new(),
-        states: Vec::new(),
+        packer: Packer::default(),
+        rollups: Rollups::default(),
+        disk: Disk { path: path.to_owned(), floor_bytes: settings.disk_free_floor_bytes, low: false },
     };
     (sender, writer)
 }
 
 impl Writer {
     /// Waits for at least one record (or returns `None` when every sender is gone and
-    /// nothing is queued), then writes everything queued, up to 5,000 samples, in one
+    /// nothing is queued), then writes everything queued, up to 20,000 samples, in one
     /// transaction, with an upsert of the last estimate per loop and input. Updates
     /// `ridgeline_history_rows_total` and `ridgeline_history_queue_depth`. On an error
     /// the batch is kept, and the next call tries it again.
@@ -232,11 +266,13 @@ impl Writer {
     /// history is flushed before the process exits (cancel it after the loops have
     /// stopped: a record sent after the flush began is not written). A failed batch is
     /// logged and retried a few times with backoff; one that still fails is logged with
-    /// what it held. Every 5 minutes, and once at start, deletes samples older than
-    /// `retention_days`, 2,000 rows per statement between batches, so writes never wait
-    /// long behind it.
+    /// what it held. Between batches, never holding one up for long: rolls up each closed
+    /// minute (at most an hour of one loop at a time, so a long history left to roll up
+    /// catches up in the background), every 5 minutes and once at start deletes what is
+    /// past retention, 500 rows per statement, and every 10 s looks at the disk.
     pub async fn run(mut self, cancel: CancellationToken) {
         let mut next_prune = Instant::now();
+        let mut next_disk = Instant::now();
         let mut pruning = false;
         loop {
             tokio::select! {
@@ -250,12 +286,19 @@ impl Writer {
                     // takes the batch over.
                     self.write_retrying(&cancel).await;
                 }
-                () = tokio::time::sleep_until(next_prune), if !pruning && self.retention_days > 0 => {
-                    pruning = true;
+                () = tokio::time::sleep_until(next_disk) => {
+                    self.watch_disk();
+                    next_disk = Instant::now() + DISK_EVERY;
                 }
-                () = std::future::ready(()), if pruning => {}
+                () = tokio::time::sleep_until(next_prune), if !pruning => pruning = true,
+                () = std::future::ready(()), if pruning || self.rollups.pending() => {}
             }
-            if pruning {
+            if self.rollups.pending() {
+                if let Err(e) = self.roll_up_step(now_ms()).await {
+                    tracing::warn!(error = %e, "rolling up history failed; trying again in 30 s");
+                    self.rollups.paused_until = Some(Instant::now() + Duration::from_secs(30));
+                }
+            } else if pruning {
                 let done = match self.prune(now_ms()).await {
                     Ok(deleted) => deleted == 0,
                     Err(e) => {
@@ -272,22 +315,142 @@ impl Writer {
         self.flush().await;
     }
 
-    /// Deletes at most 2,000 samples older than `retention_days` before `now_ms`, in one
-    /// short statement. Returns how many it deleted: 0 when none older remain (or when
-    /// retention is off).
+    /// Deletes, in short statements of at most 500 rows, sample blocks older than
+    /// `retention.raw_days` before `now_ms` once rolled up, then rollups older than
+    /// `retention.rollup_days`. Returns how many rows it deleted: 0 when none older remain
+    /// (a retention of 0 days keeps everything).
     pub async fn prune(&mut self, now_ms: i64) -> Result<u64, HistoryError> {
-        if self.retention_days == 0 {
-            return Ok(0);
+        let cutoff = |days: u32| now_ms.saturating_sub(i64::from(days) * MS_PER_DAY);
+        let mut statements = Vec::new();
+        if self.retention.raw_days > 0 {
+            statements.push((PRUNE_SQL, cutoff(self.retention.raw_days)));
         }
-        let cutoff_ms = now_ms.saturating_sub(i64::from(self.retention_days) * MS_PER_DAY);
+        if self.retention.rollup_days > 0 {
+            let rollup_cutoff = cutoff(self.retention.rollup_days);
+            statements.push((PRUNE_ROLLUPS_SQL, rollup_cutoff));
+            statements.push((PRUNE_ROLLUP_INPUTS_SQL, rollup_cutoff));
+        }
         let mut conn = self.take_conn().await?;
-        let result = sqlx::query(PRUNE_SQL).bind(cutoff_ms).bind(PRUNE_BATCH_ROWS).execute(&mut conn).await;
-        match result {
-            Ok(done) => {
-                self.conn = Some(conn);
-                Ok(done.rows_affected())
+        let mut deleted = 0;
+        for (sql, cutoff_ms) in statements {
+            deleted += sqlx::query(sql)
+                .bind(cutoff_ms)
+                .bind(PRUNE_BATCH_ROWS)
+                .execute(&mut conn)
+                .await?
+                .rows_affected();
+        }
+        self.conn = Some(conn);
+        Ok(deleted)
+    }
+
+    /// Rolls up one step: the first time, finds the loops with samples stored before
+    /// this start (whose minutes before now are all closed); then the closed minutes of
+    /// the loops in turn, up to an hour of minutes in all, in a transaction of its own.
+    /// Returns whether more steps have work to do.
+    pub async fn roll_up_step(&mut self, now_ms: i64) -> Result<bool, HistoryError> {
+        let mut conn = self.take_conn().await?;
+        let rollups = &mut self.rollups;
+        if !rollups.caught_up {
+            let stored: Vec<i64> = sqlx::query_scalar(
+                "SELECT id FROM names n WHERE EXISTS (SELECT 1 FROM sample_blocks b WHERE b.loop = n.id)
+                     OR EXISTS (SELECT 1 FROM open_blocks o WHERE o.loop = n.id)",
+            )
+            .fetch_all(&mut conn)
+            .await?;
+            for loop_id in stored {
+                rollups.close_before(loop_id, now_ms);
             }
-            Err(e) => Err(e.into()),
+            rollups.caught_up = true;
+            self.conn = Some(conn);
+            return Ok(self.rollups.pending());
+        }
+        if rollups.fault_state.is_none() {
+            // Named once and for all, so that it has an id to count faults by.
+            rollups.fault_state = Some(
+                sqlx::query_scalar(
+                    "INSERT INTO names (name) VALUES ('fallback')
+                     ON CONFLICT (name) DO UPDATE SET name = excluded.name RETURNING id",
+                )
+                .fetch_one(&mut conn)
+                .await?,
+            );
+        }
+        let fault_state = rollups.fault_state.unwrap_or(-1);
+        // Loops taken in turn, up to an hour of minutes in all, in one transaction.
+        let mut tx = conn.begin_with("BEGIN IMMEDIATE").await?;
+        let mut advanced: Vec<(i64, i64)> = Vec::new();
+        let mut minutes_left = ROLLUP_STEP_MINUTES;
+        while minutes_left > 0 {
+            let Some((loop_id, open_minute)) = rollups.next_loop(&advanced) else { break };
+            let through = match rollups.through.get(&loop_id) {
+                Some(through) => *through,
+                None => rollup::rolled_through(&mut tx, loop_id).await?.unwrap_or(open_minute),
+            };
+            let mut until = open_minute.min(through + minutes_left * MINUTE_MS);
+            if until > through {
+                minutes_left -= (until - through) / MINUTE_MS;
+                let minutes = rollup::roll_up(&mut tx, loop_id, fault_state, through, until).await?;
+                if minutes == 0 {
+                    // A gap (the service was stopped): on to the loop's next samples at once.
+                    let next = rollup::next_minute_from(&mut tx, loop_id, until).await?;
+                    until = next.map_or(open_minute, |next| next.clamp(until, open_minute));
+                }
+                rollup::set_rolled_through(&mut tx, loop_id, until).await?;
+            }
+            advanced.push((loop_id, until.max(through)));
+        }
+        tx.commit().await?;
+        self.rollups.through.extend(advanced);
+        self.conn = Some(conn);
+        Ok(self.rollups.pending())
+    }
+
+    /// Looks at the database's size (for `ridgeline_history_bytes`) and at the free space
+    /// of its file system: falling under the floor sends a `disk_low` event and a warning,
+    /// once until it is back over the floor.
+    fn watch_disk(&mut self) {
+        let disk = &mut self.disk;
+        let bytes: u64 = ["", "-wal"]
+            .iter()
+            .filter_map(|suffix| {
+                let mut file = disk.path.clone().into_os_string();
+                file.push(suffix);
+                std::fs::metadata(file).ok().map(|m| m.len())
+            })
+            .sum();
+        if let Some(m) = &self.metrics {
+            m.history_bytes.set(i64::try_from(bytes).unwrap_or(i64::MAX));
+        }
+        let dir = disk.path.parent().filter(|p| !p.as_os_str().is_empty()).unwrap_or(Path::new("."));
+        let free = match rustix::fs::statvfs(dir) {
+            Ok(stat) => stat.f_bavail.saturating_mul(stat.f_frsize),
+            Err(e) => {
+                tracing::debug!(error = %e, dir = %dir.display(), "cannot read the free space under the history");
+                return;
+            }
+        };
+        if free < disk.floor_bytes && !disk.low {
+            disk.low = true;
+            tracing::warn!(
+                free_mb = free / 1_048_576, floor_mb = disk.floor_bytes / 1_048_576, database = %disk.path.display(),
+                "free space under the history database is below the floor; history stops when the disk is full"
+            );
+            self.events.push(EventRecord {
+                at_ms: now_ms(),
+                loop_name: None,
+                kind: "disk_low".into(),
+                detail: serde_json::json!({
+                    "free_bytes": free, "floor_bytes": disk.floor_bytes, "database": disk.path.display().to_string(),
+                }),
+                actor: "system".into(),
+            });
+        } else if free >= disk.floor_bytes && disk.low {
+            disk.low = false;
+            tracing::info!(
+                free_mb = free / 1_048_576,
+                "free space under the history database is back above the floor"
+            );
         }
     }
 
@@ -317,7 +480,7 @@ impl Writer {
     /// `/readyz` reports follows the outcome.
     async fn write_batch(&mut self) -> Result<Written, HistoryError> {
         let result = self.write_pending().await;
-        self.writes_ok.store(result.is_ok(), std::sync::atomic::Ordering::Relaxed);
+        self.write_failure.set(result.as_ref().err().map(|e| format!("its last batch failed: {e}")));
         result
     }
 
@@ -348,11 +511,20 @@ impl Writer {
             return Ok(written);
         }
         self.collect_latest();
+        // Each loop's samples in time order, so that blocks are. A loop queues its own in
+        // order, so only a clock set back calls for sorting.
+        if !each_loop_in_time_order(&self.samples) {
+            self.samples.sort_by(|a, b| a.loop_name.cmp(&b.loop_name).then(a.at_ms.cmp(&b.at_ms)));
+        }
         let mut conn = self.take_conn().await?;
         // On an error the connection is dropped (rolling back), and the next attempt
         // opens a fresh one.
-        self.insert(&mut conn).await?;
+        let packed = self.insert(&mut conn).await?;
         self.conn = Some(conn);
+        for &(loop_id, at_ms) in &packed.newest {
+            self.rollups.close_before(loop_id, at_ms);
+        }
+        self.packer.adopt(packed);
         self.samples.clear();
         self.events.clear();
         if let Some(m) = &self.metrics {
@@ -362,20 +534,11 @@ impl Writer {
         Ok(written)
     }
 
-    /// The pending batch in one transaction.
-    async fn insert(&mut self, conn: &mut SqliteConnection) -> Result<(), HistoryError> {
+    /// The pending batch in one transaction; what it packed, to adopt once committed.
+    async fn insert(&mut self, conn: &mut SqliteConnection) -> Result<Packed, HistoryError> {
         // IMMEDIATE takes the write lock up front, waiting out the busy timeout for it.
         let mut tx = conn.begin_with("BEGIN IMMEDIATE").await?;
-        // Each statement's values are built while SQLite runs the one before, on its own thread.
-        let mut chunks = self.samples.chunks(ROWS_PER_STATEMENT);
-        let mut next = chunks.next().map(|c| insert_samples(c, &mut self.states));
-        while let Some(query) = next {
-            let (done, following) = futures_util::join!(query.execute(&mut *tx), async {
-                chunks.next().map(|c| insert_samples(c, &mut self.states))
-            });
-            done?;
-            next = following;
-        }
+        let packed = self.packer.pack(&mut tx, &self.samples).await?;
         insert_events(&mut tx, &self.events).await?;
         let latest: Vec<_> = self
             .latest
@@ -390,7 +553,7 @@ impl Writer {
             query.execute(&mut *tx).await?;
         }
         tx.commit().await?;
-        Ok(())
+        Ok(packed)
     }
 
     /// Writes the events of batches given up, alone in one transaction.
@@ -542,6 +705,17 @@ async fn insert_events(conn: &mut SqliteConnection, events: &[EventRecord]) -> R
     Ok(())
 }
 
+/// Whether no loop's sample in `samples` is earlier than one of the same loop before it.
+fn each_loop_in_time_order(samples: &[SampleRecord]) -> bool {
+    let mut last: HashMap<&str, i64> = HashMap::new();
+    samples.iter().all(|s| {
+        let at = last.entry(&s.loop_name).or_insert(s.at_ms);
+        let ordered = s.at_ms >= *at;
+        *at = s.at_ms;
+        ordered
+    })
+}
+
 /// Of how many ticks one is kept with `queued` samples waiting in a queue of `capacity`.
 fn keep_every(queued: usize, capacity: usize) -> u64 {
     match queued as f64 / capacity as f64 {
@@ -560,66 +734,30 @@ fn log_unrecorded(e: &EventRecord, why: &str) {
     );
 }
 
-fn insert_samples(
-    chunk: &[SampleRecord],
-    states: &mut Vec<Arc<str>>,
-) -> Query<'static, Sqlite, SqliteArguments> {
-    let mut query = sqlx::query(INSERT_SAMPLES[chunk.len() - 1].as_str());
-    for s in chunk {
-        query = query
-            .bind(s.loop_name.clone())
-            .bind(s.at_ms)
-            .bind(s.objective.filter(|x| x.is_finite()))
-            .bind(interned(states, s.state))
-            .bind(inputs_json(&s.inputs))
-            .bind(s.phase)
-            .bind(constraints_json(&s.constraints));
+impl Rollups {
+    /// Marks the minutes of loop `loop_id` before the one `at_ms` lies in as closed.
+    fn close_before(&mut self, loop_id: i64, at_ms: i64) {
+        let minute = rollup::floor_to(at_ms, MINUTE_MS);
+        let open = self.open_minute.entry(loop_id).or_insert(minute);
+        *open = (*open).max(minute);
     }
-    query
-}
 
-fn interned(states: &mut Vec<Arc<str>>, state: &'static str) -> Arc<str> {
-    match states.iter().find(|s| ***s == *state) {
-        Some(s) => s.clone(),
-        None => {
-            let s: Arc<str> = Arc::from(state);
-            states.push(s.clone());
-            s
+    /// Whether a step has something to do (and is not waiting after a failure).
+    fn pending(&self) -> bool {
+        if self.paused_until.is_some_and(|t| Instant::now() < t) {
+            return false;
         }
+        !self.caught_up || self.next_loop(&[]).is_some()
     }
-}
 
-/// `{"<constraint>": value, ...}` in the given order (a value that is not finite as
-/// `null`); `None` for a loop without constraints.
-fn constraints_json(constraints: &[(Arc<str>, f64)]) -> Option<String> {
-    if constraints.is_empty() {
-        return None;
+    /// A loop with closed minutes not rolled up yet (or not yet looked up), other than
+    /// those `done` in this step, and the start of its open minute.
+    fn next_loop(&self, done: &[(i64, i64)]) -> Option<(i64, i64)> {
+        self.open_minute
+            .iter()
+            .find(|(id, open)| {
+                self.through.get(id).is_none_or(|t| t < open) && !done.iter().any(|(d, _)| d == *id)
+            })
+            .map(|(id, open)| (*id, *open))
     }
-    let map: serde_json::Map<String, serde_json::Value> =
-        constraints.iter().map(|(name, v)| (name.to_string(), serde_json::json!(v))).collect();
-    Some(serde_json::Value::Object(map).to_string())
-}
-
-/// `{"<input>": {"applied": .., "estimate": .., "gradient": ..}, ...}` in the given order;
-/// serde_json writes a non-finite number as `null`.
-pub(super) fn inputs_json(inputs: &[InputSample]) -> String {
-    let mut out = Vec::with_capacity(2 + inputs.len() * 96);
-    out.push(b'{');
-    for (k, i) in inputs.iter().enumerate() {
-        if k > 0 {
-            out.push(b',');
-        }
-        // Writing into a Vec cannot fail.
-        let _ = serde_json::to_writer(&mut out, &*i.name);
-        out.extend_from_slice(b":{\"applied\":");
-        let _ = serde_json::to_writer(&mut out, &i.applied);
-        out.extend_from_slice(b",\"estimate\":");
-        let _ = serde_json::to_writer(&mut out, &i.estimate);
-        out.extend_from_slice(b",\"gradient\":");
-        let _ = serde_json::to_writer(&mut out, &i.gradient);
-        out.push(b'}');
-    }
-    out.push(b'}');
-    // serde_json writes UTF-8 only.
-    String::from_utf8(out).unwrap_or_else(|e| String::from_utf8_lossy(e.as_bytes()).into_owned())
 }

@@ -913,7 +913,7 @@ impl LoopTask {
                 tick: self.last_tick.unwrap_or(0),
                 at_ms: now_ms(),
                 objective: report.objective,
-                state: c.state().as_str(),
+                state: c.state().as_str().into(),
                 inputs: self
                     .input_names
                     .iter()
@@ -935,7 +935,7 @@ impl LoopTask {
                     .map(|(name, v)| (name.clone(), v.value.unwrap_or(f64::NAN)))
                     .collect(),
                 phase: match c.detail() {
-                    Detail::Dwell(d) if c.state() == State::Seeking => Some(d.phase.as_str()),
+                    Detail::Dwell(d) if c.state() == State::Seeking => Some(d.phase.as_str().into()),
                     _ => None,
                 },
             });
