@@ -13,6 +13,8 @@ mod constraints_live;
 mod drive;
 mod faults;
 mod filters;
+mod history_disk;
+mod history_migration;
 mod live;
 mod methods_live;
 mod modbus_interop;

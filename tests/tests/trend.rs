@@ -98,7 +98,7 @@ fn a_trend_window_or_points_out_of_range_is_refused_naming_the_parameter() {
         http_request(rig.api(), "GET", "/healthz", &[], None).is_some()
     });
     for (query, names) in [
-        ("window=31d", "window"),
+        ("window=731d", "window"),
         ("window=10", "window"),
         ("window=yesterday", "window"),
         ("points=0", "points"),
