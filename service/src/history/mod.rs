@@ -443,17 +443,16 @@ impl History {
         until_ms: i64,
         bucket_ms: i64,
     ) -> Result<Vec<TrendBucket>, HistoryError> {
-        let rows = sqlx::query(
+        // Both statements take the same five parameters.
+        let query = |sql: &'static str| {
+            sqlx::query(sql).bind(since_ms).bind(bucket_ms).bind(loop_id).bind(period_s).bind(until_ms)
+        };
+        let rows = query(
             "SELECT (start_ms - ?1) / ?2 AS bucket, sum(ticks), min(objective_min),
                  sum(objective_mean * objective_n) / nullif(sum(objective_n), 0), max(objective_max)
              FROM rollups WHERE loop = ?3 AND period_s = ?4 AND start_ms >= ?1 AND start_ms < ?5
              GROUP BY bucket ORDER BY bucket",
         )
-        .bind(since_ms)
-        .bind(bucket_ms)
-        .bind(loop_id)
-        .bind(period_s)
-        .bind(until_ms)
         .fetch_all(&self.pool)
         .await?;
         let mut buckets = rows
@@ -467,18 +466,13 @@ impl History {
                 })
             })
             .collect::<Result<Vec<_>, sqlx::Error>>()?;
-        let rows = sqlx::query(
+        let rows = query(
             "SELECT (start_ms - ?1) / ?2 AS bucket, input,
                  sum(applied_mean * applied_n) / nullif(sum(applied_n), 0),
                  sum(estimate_mean * estimate_n) / nullif(sum(estimate_n), 0)
              FROM rollup_inputs WHERE loop = ?3 AND period_s = ?4 AND start_ms >= ?1 AND start_ms < ?5
              GROUP BY bucket, input",
         )
-        .bind(since_ms)
-        .bind(bucket_ms)
-        .bind(loop_id)
-        .bind(period_s)
-        .bind(until_ms)
         .fetch_all(&self.pool)
         .await?;
         for r in &rows {

@@ -172,39 +172,32 @@ pub(super) async fn roll_up(
     Ok(minutes.len())
 }
 
-/// The hour from `hour_ms` as one row from its minute rows (none if it has none).
+/// The hour from `hour_ms` as one row from its minute rows (none if it has none), and its
+/// inputs likewise. Both statements take the loop, the hour and its end.
+const HOUR_SQL: [&str; 2] = [
+    "INSERT OR REPLACE INTO rollups (loop, period_s, start_ms, ticks, faults, state, objective_n,
+         objective_min, objective_mean, objective_max)
+     SELECT ?1, 3600, ?2, sum(ticks), sum(faults),
+         (SELECT state FROM rollups WHERE loop = ?1 AND period_s = 60 AND start_ms >= ?2 AND start_ms < ?3
+          GROUP BY state ORDER BY sum(ticks) DESC, min(start_ms) LIMIT 1),
+         sum(objective_n), min(objective_min),
+         sum(objective_mean * objective_n) / nullif(sum(objective_n), 0), max(objective_max)
+     FROM rollups WHERE loop = ?1 AND period_s = 60 AND start_ms >= ?2 AND start_ms < ?3
+     HAVING count(*) > 0",
+    "INSERT OR REPLACE INTO rollup_inputs (loop, period_s, start_ms, input, applied_n, applied_min,
+         applied_mean, applied_max, estimate_n, estimate_min, estimate_mean, estimate_max)
+     SELECT ?1, 3600, ?2, input,
+         sum(applied_n), min(applied_min), sum(applied_mean * applied_n) / nullif(sum(applied_n), 0), max(applied_max),
+         sum(estimate_n), min(estimate_min), sum(estimate_mean * estimate_n) / nullif(sum(estimate_n), 0),
+         max(estimate_max)
+     FROM rollup_inputs WHERE loop = ?1 AND period_s = 60 AND start_ms >= ?2 AND start_ms < ?3
+     GROUP BY input",
+];
+
 async fn roll_up_hour(conn: &mut SqliteConnection, loop_id: i64, hour_ms: i64) -> Result<(), HistoryError> {
-    sqlx::query(
-        "INSERT OR REPLACE INTO rollups (loop, period_s, start_ms, ticks, faults, state, objective_n,
-             objective_min, objective_mean, objective_max)
-         SELECT ?1, 3600, ?2, sum(ticks), sum(faults),
-             (SELECT state FROM rollups WHERE loop = ?1 AND period_s = 60 AND start_ms >= ?2 AND start_ms < ?3
-              GROUP BY state ORDER BY sum(ticks) DESC, min(start_ms) LIMIT 1),
-             sum(objective_n), min(objective_min),
-             sum(objective_mean * objective_n) / nullif(sum(objective_n), 0), max(objective_max)
-         FROM rollups WHERE loop = ?1 AND period_s = 60 AND start_ms >= ?2 AND start_ms < ?3
-         HAVING count(*) > 0",
-    )
-    .bind(loop_id)
-    .bind(hour_ms)
-    .bind(hour_ms + HOUR_MS)
-    .execute(&mut *conn)
-    .await?;
-    sqlx::query(
-        "INSERT OR REPLACE INTO rollup_inputs (loop, period_s, start_ms, input, applied_n, applied_min,
-             applied_mean, applied_max, estimate_n, estimate_min, estimate_mean, estimate_max)
-         SELECT ?1, 3600, ?2, input,
-             sum(applied_n), min(applied_min), sum(applied_mean * applied_n) / nullif(sum(applied_n), 0), max(applied_max),
-             sum(estimate_n), min(estimate_min), sum(estimate_mean * estimate_n) / nullif(sum(estimate_n), 0),
-             max(estimate_max)
-         FROM rollup_inputs WHERE loop = ?1 AND period_s = 60 AND start_ms >= ?2 AND start_ms < ?3
-         GROUP BY input",
-    )
-    .bind(loop_id)
-    .bind(hour_ms)
-    .bind(hour_ms + HOUR_MS)
-    .execute(&mut *conn)
-    .await?;
+    for sql in HOUR_SQL {
+        sqlx::query(sql).bind(loop_id).bind(hour_ms).bind(hour_ms + HOUR_MS).execute(&mut *conn).await?;
+    }
     Ok(())
 }
 
