@@ -216,7 +216,7 @@ fn schemas() -> Value {
                 "id": {"type": "integer"},
                 "at": {"type": "string", "format": "date-time"},
                 "loop": {"type": ["string", "null"]},
-                "kind": {"type": "string", "description": "mode_changed, bounds_changed, tripped, recovered, permit_withdrawn, permit_granted, permit_lost, link_conflict, constraint_engaged, constraint_released, loop_started, loop_stopped, bump_test_started, bump_test_done, bump_test_aborted, link_down, link_up, service_started, service_stopped"},
+                "kind": {"type": "string", "description": "mode_changed, bounds_changed, tripped, recovered, permit_withdrawn, permit_granted, permit_lost, link_conflict, constraint_engaged, constraint_released, loop_started, loop_stopped, bump_test_started, bump_test_done, bump_test_aborted, link_down, link_up, service_started, service_stopped, disk_low"},
                 "detail": {"description": "JSON detail of the event."},
                 "actor": {"type": "string", "description": "The token's name, or \"system\"."}
             }
