@@ -30,8 +30,8 @@ const ROWS_PER_STATEMENT: usize = 100;
 /// Rows per retention `DELETE`, each its own short transaction (a sample block holds
 /// about 25 samples).
 const PRUNE_BATCH_ROWS: i64 = 500;
-/// Most minutes of one loop rolled up in one step, so catching up on a long history never
-/// holds up a batch for long.
+/// Most minutes rolled up in one step (one transaction), across loops, so catching up on
+/// a long history never holds up a batch for long.
 const ROLLUP_STEP_MINUTES: i64 = 60;
 /// How often the database's size and the free space under it are looked at.
 const DISK_EVERY: Duration = Duration::from_secs(10);
