@@ -154,7 +154,7 @@ pub async fn bump_test_status(
     _: Reader,
     PathParams(id): PathParams<i64>,
 ) -> Result<Json<BumpTestRow>, ApiError> {
-    let history = state.history.as_ref().ok_or_else(|| ApiError::Unavailable("no history is kept".into()))?;
+    let history = state.history()?;
     history
         .bump_test(id)
         .await
@@ -196,7 +196,7 @@ pub async fn trend(
     QueryParams(query): QueryParams<TrendQuery>,
 ) -> Result<Json<Value>, ApiError> {
     let handle = state.find(&name)?;
-    let history = state.history.as_ref().ok_or_else(|| ApiError::Unavailable("no history is kept".into()))?;
+    let history = state.history()?;
     let window = query.window.as_deref().unwrap_or(TREND_WINDOW_DEFAULT);
     let window_s =
         crate::history::parse_duration_s(window).map_err(|e| ApiError::BadRequest(format!("window: {e}")))?;
@@ -275,7 +275,7 @@ pub async fn samples(
     headers: HeaderMap,
 ) -> Result<Response, ApiError> {
     let handle = state.find(&name)?;
-    let history = state.history.as_ref().ok_or_else(|| ApiError::Unavailable("no history is kept".into()))?;
+    let history = state.history()?;
     // Only a stepwise loop has dwell phases, and only a loop with constraints has their
     // values: the other loops' samples keep their shape.
     let shape = Shape {
@@ -405,7 +405,7 @@ pub async fn events(
     if let Some(name) = &query.loop_name {
         state.find(name)?;
     }
-    let history = state.history.as_ref().ok_or_else(|| ApiError::Unavailable("no history is kept".into()))?;
+    let history = state.history()?;
     let since = time_param("since", query.since.as_deref())?;
     let limit = limit_param(query.limit, EVENTS_DEFAULT, EVENTS_MAX)?;
     let rows = history

@@ -51,6 +51,11 @@ impl ApiState {
             .ok_or_else(|| ApiError::NotFound(format!("loop `{name}` has no input `{input}`")))?;
         Ok((handle, index))
     }
+
+    /// The history store, for the routes that read it.
+    fn history(&self) -> Result<&History, ApiError> {
+        self.history.as_ref().ok_or_else(|| ApiError::Unavailable("no history is kept".into()))
+    }
 }
 
 /// Every error the API answers with.
