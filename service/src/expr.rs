@@ -1047,7 +1047,7 @@ mod tests {
         }
 
         #[test]
-        fn parse_never_panics_on_operator_soup(
+        fn operator_soup_parses_or_is_refused_at_its_cause(
             source in "[()+\\-*/^.,eE0-9a-z \t]{0,60}",
             values in values(0..4),
         ) {
@@ -1055,12 +1055,12 @@ mod tests {
         }
 
         #[test]
-        fn parse_never_panics_on_arbitrary_text(source in any::<String>(), values in values(0..4)) {
+        fn arbitrary_text_parses_or_is_refused_at_its_cause(source in any::<String>(), values in values(0..4)) {
             check_any_input(&source, &values)?;
         }
 
         #[test]
-        fn parse_never_panics_on_token_sequences(
+        fn token_sequences_parse_or_are_refused_at_their_cause(
             tokens in prop::collection::vec(prop::sample::select(TOKENS.to_vec()), 0..40),
             values in values(0..4),
         ) {
@@ -1083,7 +1083,66 @@ mod tests {
                 let columns = 1..=source.chars().count() + 1;
                 prop_assert!(columns.contains(&e.column), "{:?}: {:?}", source, e);
                 prop_assert!(!e.message.is_empty());
+                prop_assert!(e.to_string().ends_with(&format!(" at column {}", e.column)), "{:?}", e);
+                points_at_its_cause(source, &e)?;
             }
+        }
+        Ok(())
+    }
+
+    /// An error's column is where the problem is: on what the message quotes as found,
+    /// on the name, bracket or sign it is about, or at the end for what is missing; never
+    /// on whitespace the lexer skips, unless the whole expression is blank.
+    fn points_at_its_cause(source: &str, e: &ExprError) -> Result<(), TestCaseError> {
+        let chars: Vec<char> = source.chars().collect();
+        let at: String = chars[e.column - 1..].iter().collect();
+        let end = e.column == chars.len() + 1;
+        let char_at = |column: usize| chars.get(column - 1).copied();
+        let m = e.message.as_str();
+        // The text between the first pair of single quotes, and the column named after "at column".
+        let quoted = m.split('\'').nth(1).unwrap_or("");
+        let named_column =
+            |m: &str| -> Option<usize> { m.split("at column ").nth(1)?.split(' ').next()?.parse().ok() };
+        let fail = |why: &str| Err(TestCaseError::fail(format!("{source:?}: {e:?}: {why}")));
+        if m == "empty expression" {
+            prop_assert!(source.trim_start_matches([' ', '\t', '\n', '\r']).is_empty(), "{:?}", e);
+            return Ok(());
+        }
+        if !end && matches!(char_at(e.column), Some(' ' | '\t' | '\n' | '\r')) {
+            return fail("the column is on skipped whitespace");
+        }
+        if let Some(open) = named_column(m) {
+            // "missing ')' for the '(' at column N", "expected ')' to close the '(' at column N ...".
+            if char_at(open) != Some('(') {
+                return fail("the column the message names is not a '('");
+            }
+        }
+        let fits = if m.starts_with("unexpected character ") {
+            char_at(e.column).is_some_and(|c| m == format!("unexpected character {c:?}"))
+        } else if m.starts_with("missing ')'") || m.ends_with("found the end of the expression") {
+            end
+        } else if m.contains("found '") {
+            at.starts_with(m.split("found '").nth(1).and_then(|f| f.rsplit_once('\'')).map_or("", |f| f.0))
+        } else if m.starts_with("malformed number")
+            || m.starts_with("number ")
+            || m.starts_with("unknown function")
+            || m.contains("is a function, not a variable")
+            || m.starts_with("unexpected '")
+            || m.starts_with("unbalanced ')'")
+        {
+            at.starts_with(quoted)
+        } else if let Some((name, _)) = m.split_once("() ") {
+            // "min() needs at least 2 arguments": the column is on the function's name.
+            at.starts_with(name)
+        } else if m.starts_with("nested too deeply") {
+            matches!(char_at(e.column), Some('(' | '-' | '+' | '^'))
+        } else if m.starts_with("expression too complex") {
+            char_at(e.column).is_some_and(|c| c.is_ascii_alphanumeric() || c == '_' || c == '.')
+        } else {
+            return fail("a message this property does not know: teach it where the column should be");
+        };
+        if !fits {
+            return fail("the column is not on what the message is about");
         }
         Ok(())
     }

@@ -13,6 +13,7 @@ mod constraints_live;
 mod drive;
 mod faults;
 mod filters;
+mod garbage_frames;
 mod history_disk;
 mod history_migration;
 mod live;

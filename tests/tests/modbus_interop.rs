@@ -22,15 +22,15 @@ const REQUEST: Duration = Duration::from_secs(2);
 /// How long the peer may take to report a request it answered.
 const EVENT: Duration = Duration::from_secs(5);
 /// The pymodbus device id, and Ridgeline's unit id for it.
-const UNIT: u8 = 1;
+pub(crate) const UNIT: u8 = 1;
 
-fn codec(kind: RegisterType, word_order: WordOrder, scale: f64, offset: f64) -> Codec {
+pub(crate) fn codec(kind: RegisterType, word_order: WordOrder, scale: f64, offset: f64) -> Codec {
     Codec { kind, word_order, scale, offset }
 }
 
 /// One value the pymodbus server holds: `raw` is what Python packs with `struct`.
 #[derive(Debug, Clone, Copy)]
-struct Entry {
+pub(crate) struct Entry {
     space: RegisterSpace,
     address: u16,
     codec: Codec,
@@ -58,7 +58,7 @@ impl Entry {
 }
 
 /// Entries at consecutive addresses of one table, from `start`.
-fn lay_out(space: RegisterSpace, start: u16, values: &[(Codec, f64)]) -> Vec<Entry> {
+pub(crate) fn lay_out(space: RegisterSpace, start: u16, values: &[(Codec, f64)]) -> Vec<Entry> {
     let mut address = start;
     values
         .iter()
@@ -71,15 +71,15 @@ fn lay_out(space: RegisterSpace, start: u16, values: &[(Codec, f64)]) -> Vec<Ent
 }
 
 /// A running `tests/peers/modbus_server.py`, killed when dropped.
-struct PymodbusServer {
+pub(crate) struct PymodbusServer {
     peer: Peer,
-    address: String,
+    pub(crate) address: String,
     /// Per entry, as Python made it: `words` (the registers) and `engineering_bits` (the value).
     values: Vec<Value>,
 }
 
 impl PymodbusServer {
-    fn start(entries: &[Entry]) -> Self {
+    pub(crate) fn start(entries: &[Entry]) -> Self {
         let layout = json!({ "unit": UNIT, "values": entries.iter().map(Entry::json).collect::<Vec<_>>() });
         let mut command = python_peer("modbus_server.py");
         command.arg(layout.to_string());
@@ -100,7 +100,7 @@ impl PymodbusServer {
     }
 
     /// The registers Python encoded for entry `i`.
-    fn words(&self, i: usize) -> Vec<u16> {
+    pub(crate) fn words(&self, i: usize) -> Vec<u16> {
         let words = self.values[i]["words"].as_array().expect("words");
         words.iter().map(|w| w.as_u64().expect("a register") as u16).collect()
     }

@@ -117,19 +117,35 @@ fn floor_char_boundary(text: &str, mut offset: usize) -> usize {
 }
 
 /// Reads a file's text, or the one problem of not being able to; also returns the name
-/// problems use for the file.
+/// problems use for the file. Text that is not UTF-8 (which TOML requires) is refused at
+/// the line and column of its first invalid byte.
 pub fn read_file(path: &std::path::Path) -> Result<(String, String), FileProblems> {
     let file = path.display().to_string();
-    match std::fs::read_to_string(path) {
+    let refuse = |line, message| {
+        Err(FileProblems {
+            file: file.clone(),
+            problems: vec![Problem { path: String::new(), line, message }],
+        })
+    };
+    let bytes = match std::fs::read(path) {
+        Ok(bytes) => bytes,
+        Err(e) => return refuse(None, format!("cannot read the file: {e}")),
+    };
+    match String::from_utf8(bytes) {
         Ok(text) => Ok((text, file)),
-        Err(e) => Err(FileProblems {
-            file,
-            problems: vec![Problem {
-                path: String::new(),
-                line: None,
-                message: format!("cannot read the file: {e}"),
-            }],
-        }),
+        Err(e) => {
+            let at = e.utf8_error().valid_up_to();
+            let bytes = e.as_bytes();
+            let valid = std::str::from_utf8(&bytes[..at]).unwrap_or_default();
+            let line = Problems::new(valid).line_col(at);
+            refuse(
+                Some(line),
+                format!(
+                    "cannot read the file: byte 0x{:02X} is not valid UTF-8 (TOML files are UTF-8 text)",
+                    bytes[at]
+                ),
+            )
+        }
     }
 }
 

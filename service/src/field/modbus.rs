@@ -1,14 +1,20 @@
 //! A Modbus/TCP link: one connection shared by every loop that uses it, one request in
-//! flight, a timeout on each request, and reconnection with capped exponential backoff
-//! and jitter.
+//! flight, a timeout on each request, answers checked against their request, and
+//! reconnection with capped exponential backoff and jitter.
 
+use std::io;
+use std::pin::Pin;
 use std::sync::Arc;
+use std::sync::atomic::{AtomicBool, AtomicUsize, Ordering};
+use std::task::{Context as TaskContext, Poll};
 use std::time::Duration;
 
+use tokio::io::{AsyncRead, AsyncWrite, ReadBuf};
+use tokio::net::TcpStream;
 use tokio::sync::Mutex;
 use tokio::time::{Instant, timeout};
-use tokio_modbus::client::{Context, Reader, Writer};
-use tokio_modbus::{ExceptionCode, Slave};
+use tokio_modbus::client::{Client, Context};
+use tokio_modbus::{ExceptionCode, ProtocolError, Response, Slave};
 
 use super::error::{Function, LinkError};
 use crate::config::RegisterSpace;
@@ -39,6 +45,8 @@ struct Inner {
 #[derive(Default)]
 struct Connection {
     context: Option<Context>,
+    /// What the current connection's stream has seen, for transport errors' reasons.
+    watch: Arc<Watch>,
     /// Failures since the last answer; a connection that is accepted but never answers
     /// does not reset it, so a hung peer backs off like a dead one.
     failures: u32,
@@ -76,17 +84,163 @@ impl Request<'_> {
         }
     }
 
-    async fn send(&self, context: &mut Context) -> tokio_modbus::Result<Vec<u16>> {
+    /// The request as tokio-modbus sends it.
+    fn wire(&self) -> tokio_modbus::Request<'_> {
         match *self {
-            Request::Read(RegisterSpace::Input, a, n) => context.read_input_registers(a, n).await,
-            Request::Read(RegisterSpace::Holding, a, n) => context.read_holding_registers(a, n).await,
-            Request::Write(a, [word]) => {
-                context.write_single_register(a, *word).await.map(|r| r.map(|()| Vec::new()))
-            }
-            Request::Write(a, words) => {
-                context.write_multiple_registers(a, words).await.map(|r| r.map(|()| Vec::new()))
-            }
+            Request::Read(RegisterSpace::Input, a, n) => tokio_modbus::Request::ReadInputRegisters(a, n),
+            Request::Read(RegisterSpace::Holding, a, n) => tokio_modbus::Request::ReadHoldingRegisters(a, n),
+            Request::Write(a, [word]) => tokio_modbus::Request::WriteSingleRegister(a, *word),
+            Request::Write(a, words) => tokio_modbus::Request::WriteMultipleRegisters(a, words.into()),
         }
+    }
+
+    /// Sends the request and checks that the answer is the one it asked for: the
+    /// registers read, or an exception code; `Err` is why the exchange failed.
+    ///
+    /// tokio-modbus's `Reader`/`Writer` helpers only `debug_assert` the register count
+    /// and the write echo (a panic in debug builds, a wrong answer taken in release), so
+    /// requests go through `Client::call` and the answer is checked here.
+    async fn send(&self, context: &mut Context) -> Result<Result<Vec<u16>, ExceptionCode>, String> {
+        match context.call(self.wire()).await {
+            Ok(Ok(response)) => self.check(response).map(Ok),
+            Ok(Err(code)) => Ok(Err(code)),
+            Err(e) => Err(protocol_reason(&e)),
+        }
+    }
+
+    /// Source: Modbus Application Protocol Specification V1.1b3 §6.3 and §6.4 (a read
+    /// answers 2 x N bytes for N registers asked), §6.6 (a single write is echoed) and
+    /// §6.12 (a multiple write answers its starting address and quantity).
+    fn check(&self, response: Response) -> Result<Vec<u16>, String> {
+        match (self, response) {
+            (
+                Request::Read(_, _, count),
+                Response::ReadInputRegisters(words) | Response::ReadHoldingRegisters(words),
+            ) => {
+                if words.len() == usize::from(*count) {
+                    Ok(words)
+                } else {
+                    Err(format!("the answer holds {}, the request asked for {count}", registers(words.len())))
+                }
+            }
+            (Request::Write(address, [word]), Response::WriteSingleRegister(at, echoed)) => {
+                if (at, echoed) == (*address, *word) {
+                    Ok(Vec::new())
+                } else {
+                    Err(format!(
+                        "answered {echoed} at register {at} to a write of {word} at register {address}; \
+                         the answer must echo the request"
+                    ))
+                }
+            }
+            (Request::Write(address, words), Response::WriteMultipleRegisters(at, count)) => {
+                if (at, usize::from(count)) == (*address, words.len()) {
+                    Ok(Vec::new())
+                } else {
+                    Err(format!(
+                        "the answer acknowledges {} from register {at}, the request wrote {} from register {address}",
+                        registers(usize::from(count)),
+                        words.len()
+                    ))
+                }
+            }
+            (_, other) => Err(format!("answered function 0x{:02X}", other.function_code().value())),
+        }
+    }
+}
+
+fn registers(n: usize) -> String {
+    if n == 1 { "1 register".to_owned() } else { format!("{n} registers") }
+}
+
+/// Why tokio-modbus refused an answer, in words (its own text for a function-code
+/// mismatch is the whole decoded answer).
+fn protocol_reason(e: &tokio_modbus::Error) -> String {
+    match e {
+        tokio_modbus::Error::Protocol(ProtocolError::HeaderMismatch { message, .. }) => {
+            format!("the answer's MBAP header does not match the request ({message})")
+        }
+        tokio_modbus::Error::Protocol(ProtocolError::FunctionCodeMismatch { request, result }) => {
+            let answered = match result {
+                Ok(response) => response.function_code().value(),
+                Err(exception) => exception.function.value() | 0x80,
+            };
+            format!("answered function 0x{answered:02X} to a request for function 0x{:02X}", request.value())
+        }
+        // tokio-modbus's decoder: InvalidData for what breaks the frame's rules, InvalidInput
+        // for a PDU past 253 bytes, UnexpectedEof (its reader's "failed to fill whole
+        // buffer") for a PDU shorter than its function needs.
+        tokio_modbus::Error::Transport(io) if io.kind() == io::ErrorKind::UnexpectedEof => {
+            "malformed answer: the PDU is shorter than its function needs".to_owned()
+        }
+        tokio_modbus::Error::Transport(io)
+            if matches!(io.kind(), io::ErrorKind::InvalidData | io::ErrorKind::InvalidInput) =>
+        {
+            format!("malformed answer: {io}")
+        }
+        tokio_modbus::Error::Transport(io) => io.to_string(),
+    }
+}
+
+/// What a connection's stream has seen since the last request went out: tokio-modbus
+/// reports a closed connection as the thread's last OS error, which names something else.
+#[derive(Debug, Default)]
+struct Watch {
+    closed: AtomicBool,
+    read_since_request: AtomicUsize,
+}
+
+impl Watch {
+    /// Why the exchange failed, if the server closed the connection.
+    fn closed_reason(&self) -> Option<String> {
+        if !self.closed.load(Ordering::Relaxed) {
+            return None;
+        }
+        Some(match self.read_since_request.load(Ordering::Relaxed) {
+            0 => "the server closed the connection without answering".to_owned(),
+            n => format!("the server closed the connection after {n} bytes of an incomplete answer"),
+        })
+    }
+}
+
+/// A TCP stream that tells its [`Watch`] what it sees.
+#[derive(Debug)]
+struct Watched {
+    stream: TcpStream,
+    watch: Arc<Watch>,
+}
+
+impl AsyncRead for Watched {
+    fn poll_read(
+        mut self: Pin<&mut Self>,
+        cx: &mut TaskContext<'_>,
+        buf: &mut ReadBuf<'_>,
+    ) -> Poll<io::Result<()>> {
+        let before = buf.filled().len();
+        let polled = Pin::new(&mut self.stream).poll_read(cx, buf);
+        if let Poll::Ready(Ok(())) = polled {
+            let read = buf.filled().len() - before;
+            if read == 0 && buf.remaining() > 0 {
+                self.watch.closed.store(true, Ordering::Relaxed);
+            }
+            self.watch.read_since_request.fetch_add(read, Ordering::Relaxed);
+        }
+        polled
+    }
+}
+
+impl AsyncWrite for Watched {
+    fn poll_write(mut self: Pin<&mut Self>, cx: &mut TaskContext<'_>, buf: &[u8]) -> Poll<io::Result<usize>> {
+        self.watch.read_since_request.store(0, Ordering::Relaxed);
+        Pin::new(&mut self.stream).poll_write(cx, buf)
+    }
+
+    fn poll_flush(mut self: Pin<&mut Self>, cx: &mut TaskContext<'_>) -> Poll<io::Result<()>> {
+        Pin::new(&mut self.stream).poll_flush(cx)
+    }
+
+    fn poll_shutdown(mut self: Pin<&mut Self>, cx: &mut TaskContext<'_>) -> Poll<io::Result<()>> {
+        Pin::new(&mut self.stream).poll_shutdown(cx)
     }
 }
 
@@ -172,8 +326,9 @@ impl ModbusLink {
                 self.note_answer(&mut connection);
                 return Err(e);
             }
-            Ok(Err(e)) => {
-                LinkError::Transport { link: inner.name.clone(), function, address, reason: e.to_string() }
+            Ok(Err(reason)) => {
+                let reason = connection.watch.closed_reason().unwrap_or(reason);
+                LinkError::Transport { link: inner.name.clone(), function, address, reason }
             }
             Err(_) => LinkError::Timeout {
                 link: inner.name.clone(),
@@ -204,15 +359,19 @@ impl ModbusLink {
         let attempt = async {
             let mut last = None;
             for addr in tokio::net::lookup_host(inner.address.as_str()).await? {
-                match tokio_modbus::client::tcp::connect_slave(addr, Slave(inner.unit)).await {
-                    Ok(context) => return Ok(context),
+                match TcpStream::connect(addr).await {
+                    Ok(stream) => return Ok(stream),
                     Err(e) => last = Some(e),
                 }
             }
-            Err(last.unwrap_or_else(|| std::io::Error::other("the name resolves to no address")))
+            Err(last.unwrap_or_else(|| io::Error::other("the name resolves to no address")))
         };
         let result = match timeout(inner.timeout, attempt).await {
-            Ok(Ok(context)) => Ok(context),
+            Ok(Ok(stream)) => {
+                let watch = Arc::new(Watch::default());
+                connection.watch = watch.clone();
+                Ok(tokio_modbus::client::tcp::attach_slave(Watched { stream, watch }, Slave(inner.unit)))
+            }
             Ok(Err(e)) => Err(e.to_string()),
             Err(_) => Err(format!("no connection within {} ms", inner.timeout.as_millis())),
         };
@@ -272,13 +431,13 @@ pub fn backoff(failures: u32, jitter: f64) -> Duration {
 }
 
 fn exception(link: &str, function: Function, address: u16, code: ExceptionCode) -> LinkError {
-    LinkError::Exception {
-        link: link.to_owned(),
-        function,
-        address,
-        code: u8::from(code),
-        name: code.to_string(),
-    }
+    // Source: Modbus Application Protocol Specification V1.1b3 §7 defines codes 0x01 to
+    // 0x0B (not 0x07 or 0x09); tokio-modbus names any other code "Custom".
+    let name = match code {
+        ExceptionCode::Custom(_) => "not a code the Modbus specification defines".to_owned(),
+        known => known.to_string(),
+    };
+    LinkError::Exception { link: link.to_owned(), function, address, code: u8::from(code), name }
 }
 
 #[cfg(test)]
