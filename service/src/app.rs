@@ -43,6 +43,8 @@ impl Default for Options {
 /// A service that is bound to its port and has its database open, but is not yet running.
 pub struct App {
     listener: tokio::net::TcpListener,
+    /// The API's certificate and key, when it serves HTTPS.
+    tls: Option<api::Tls>,
     tasks: Vec<(LoopTask, Duration)>,
     state: ApiState,
     writer: Writer,
@@ -91,9 +93,24 @@ impl App {
         if access.is_empty() {
             tracing::warn!("no [[access]] tokens in the config: every change through the API is refused");
         }
-        let state =
-            ApiState { loops: Arc::new(handles), history: Some(history), metrics, access: Arc::new(access) };
-        Ok(App { listener, tasks, state, writer, reporting, lock })
+        let tls = match &service.tls {
+            Some(files) => Some(api::Tls::load(files).await?),
+            None => None,
+        };
+        let listening = listener.local_addr()?;
+        let warnings: Vec<String> =
+            api::cleartext_warning(listening, tls.is_some(), config.access.len()).into_iter().collect();
+        for warning in &warnings {
+            tracing::warn!("{warning}");
+        }
+        let state = ApiState {
+            loops: Arc::new(handles),
+            history: Some(history),
+            metrics,
+            access: Arc::new(access),
+            warnings: Arc::new(warnings),
+        };
+        Ok(App { listener, tls, tasks, state, writer, reporting, lock })
     }
 
     /// Where the API listens (useful with port 0).
@@ -110,7 +127,7 @@ impl App {
     /// requests (those in flight get a few seconds), every loop writes its shutdown
     /// values, and the history writer flushes what is queued.
     pub async fn run_until(self, shutdown: impl Future<Output = ()>) -> anyhow::Result<()> {
-        let App { listener, tasks, state, writer, reporting, lock } = self;
+        let App { listener, tls, tasks, state, writer, reporting, lock } = self;
         let writer_stop = CancellationToken::new();
         let writing = tokio::spawn(writer.run(writer_stop.clone()));
         reporting.event(
@@ -126,9 +143,7 @@ impl App {
             let name = task.name().to_owned();
             handles.push((name, tokio::spawn(supervisor::run(task, period, stop.clone()))));
         }
-        let api =
-            axum::serve(listener, api::router(state)).with_graceful_shutdown(stop.clone().cancelled_owned());
-        let api = tokio::spawn(async move { api.await });
+        let api = tokio::spawn(api::serve(listener, api::router(state), tls, stop.clone(), API_DRAIN));
 
         shutdown.await;
         tracing::info!("stopping: loops write their shutdown setpoints, history is flushed");
@@ -140,7 +155,8 @@ impl App {
                 tracing::error!(r#loop = %name, error = %e, "the loop's task ended abnormally");
             }
         }
-        match tokio::time::timeout(API_DRAIN, api).await {
+        // The server itself cuts requests off after API_DRAIN; this is a backstop.
+        match tokio::time::timeout(API_DRAIN + Duration::from_secs(1), api).await {
             Ok(served) => served.context("the API task failed")?.context("the API server failed")?,
             Err(_) => tracing::warn!("API requests still running after {API_DRAIN:?} were cut off"),
         }

@@ -134,10 +134,20 @@ pub fn spawn_sim(plant: &Path, port: Option<u16>) -> (Peer, u16) {
     (peer, port)
 }
 
-/// Starts `ridgeline run` with `config` and waits until its API answers; returns it
-/// and the API's address, read from its log (so the config may listen on port 0). Its
-/// log is [`Peer::stderr`].
+/// Starts `ridgeline run` with `config` and waits until its API answers over plain HTTP;
+/// returns it and the API's address, read from its log (so the config may listen on port
+/// 0). Its log is [`Peer::stderr`].
 pub fn spawn_service(config: &Path) -> (Peer, std::net::SocketAddr) {
+    let (peer, api) = start_service(config);
+    wait_until("the service's API answers", std::time::Duration::from_secs(10), || {
+        http_get(api, "/healthz").is_some_and(|(status, _)| status == 200)
+    });
+    (peer, api)
+}
+
+/// Starts `ridgeline run` with `config` and waits only until it logs its API address
+/// (an API over HTTPS, say, is for the caller to reach).
+pub fn start_service(config: &Path) -> (Peer, std::net::SocketAddr) {
     let mut command = Command::new(ridgeline_bin());
     command.args(["run", "--config", config.to_str().expect("utf-8 path")]);
     let peer = Peer::spawn("ridgeline run", command);
@@ -150,11 +160,7 @@ pub fn spawn_service(config: &Path) -> (Peer, std::net::SocketAddr) {
         });
         api.is_some()
     });
-    let api = api.expect("an API address");
-    wait_until("the service's API answers", std::time::Duration::from_secs(10), || {
-        http_get(api, "/healthz").is_some_and(|(status, _)| status == 200)
-    });
-    (peer, api)
+    (peer, api.expect("an API address"))
 }
 
 /// Polls `condition` every 50 ms until it holds; fails the test after `limit`.

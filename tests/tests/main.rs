@@ -28,5 +28,6 @@ mod rig;
 mod several_inputs;
 mod status_page;
 mod stepwise;
+mod transport;
 mod trend;
 mod tune_command;

@@ -151,6 +151,14 @@ impl Rig {
 
     /// Writes the config (with the simulator's port) and starts the service.
     pub fn service(&self) -> Peer {
+        self.write_config();
+        let (peer, api) = spawn_service(&self.config);
+        self.api.set(Some(api));
+        peer
+    }
+
+    /// Writes the config, with the simulator's port and every edit.
+    pub fn write_config(&self) {
         let database = self.database().display().to_string();
         let mut text =
             config(self.plant_port(), &database, &self.loop_extra, &self.objective, &self.extra.borrow());
@@ -159,9 +167,6 @@ impl Rig {
             text = text.replacen(from.as_str(), to, 1);
         }
         std::fs::write(&self.config, text).unwrap();
-        let (peer, api) = spawn_service(&self.config);
-        self.api.set(Some(api));
-        peer
     }
 
     pub fn setpoint(&self) -> Option<f64> {

@@ -46,7 +46,7 @@ pub async fn readyz(State(state): State<ApiState>) -> Result<Json<Value>, ApiErr
     if !waiting.is_empty() {
         return Err(ApiError::Unavailable(format!("loops that have not ticked yet: {}", waiting.join(", "))));
     }
-    Ok(Json(json!({"status": "ready"})))
+    Ok(Json(json!({"status": "ready", "warnings": *state.warnings})))
 }
 
 pub async fn metrics(State(state): State<ApiState>) -> impl IntoResponse {

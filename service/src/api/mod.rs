@@ -6,6 +6,7 @@ mod access;
 mod handlers;
 mod openapi;
 mod page;
+mod server;
 
 use std::sync::Arc;
 
@@ -22,6 +23,7 @@ use crate::history::History;
 use crate::metrics::{Metrics, UNMATCHED_ROUTE};
 use crate::supervisor::LoopHandle;
 pub use access::{AccessList, Caller, new_token, token_sha256};
+pub use server::{Tls, cleartext_warning, serve};
 
 /// Everything the handlers need; cheap to clone.
 #[derive(Clone)]
@@ -30,6 +32,9 @@ pub struct ApiState {
     pub history: Option<History>,
     pub metrics: Arc<Metrics>,
     pub access: Arc<AccessList>,
+    /// What an operator should know about how the service is set up (tokens in clear
+    /// text, say); shown by `/readyz` and the status page.
+    pub warnings: Arc<Vec<String>>,
 }
 
 impl ApiState {
@@ -74,9 +79,16 @@ pub enum ApiError {
     #[error("{0}")]
     Conflict(String),
     #[error("{0}")]
+    TooLarge(String),
+    #[error("{0}")]
     Unprocessable(String),
     #[error("{0}")]
+    Timeout(String),
+    #[error("{0}")]
     Unavailable(String),
+    /// More requests in flight than the API takes at once.
+    #[error("{0}")]
+    Busy(String),
     /// The cause is logged; the answer says nothing internal.
     #[error("internal error")]
     Internal(String),
@@ -91,8 +103,11 @@ impl ApiError {
             ApiError::NotFound(_) => (StatusCode::NOT_FOUND, "not_found"),
             ApiError::MethodNotAllowed(_) => (StatusCode::METHOD_NOT_ALLOWED, "method_not_allowed"),
             ApiError::Conflict(_) => (StatusCode::CONFLICT, "conflict"),
+            ApiError::TooLarge(_) => (StatusCode::PAYLOAD_TOO_LARGE, "too_large"),
             ApiError::Unprocessable(_) => (StatusCode::UNPROCESSABLE_ENTITY, "unprocessable"),
+            ApiError::Timeout(_) => (StatusCode::REQUEST_TIMEOUT, "timeout"),
             ApiError::Unavailable(_) => (StatusCode::SERVICE_UNAVAILABLE, "not_ready"),
+            ApiError::Busy(_) => (StatusCode::SERVICE_UNAVAILABLE, "busy"),
             ApiError::Internal(_) => (StatusCode::INTERNAL_SERVER_ERROR, "internal"),
         }
     }
@@ -152,9 +167,12 @@ pub struct JsonBody<T>(pub T);
 impl<T: DeserializeOwned, S: Send + Sync> FromRequest<S> for JsonBody<T> {
     type Rejection = ApiError;
     async fn from_request(req: Request, state: &S) -> Result<Self, ApiError> {
-        let bytes = axum::body::Bytes::from_request(req, state)
-            .await
-            .map_err(|e| ApiError::BadRequest(format!("cannot read the request body: {e}")))?;
+        let bytes = axum::body::Bytes::from_request(req, state).await.map_err(|e| match e.status() {
+            StatusCode::PAYLOAD_TOO_LARGE => {
+                ApiError::TooLarge(format!("the request body is too large: {e}"))
+            }
+            _ => ApiError::BadRequest(format!("cannot read the request body: {e}")),
+        })?;
         serde_json::from_slice(&bytes)
             .map(JsonBody)
             .map_err(|e| ApiError::BadRequest(format!("the body is not valid: {e}")))
@@ -211,7 +229,7 @@ pub fn router(state: ApiState) -> Router {
         state.metrics.http_requests.with_label_values(&[route, "200"]);
     }
     state.metrics.http_requests.with_label_values(&[UNMATCHED_ROUTE, "404"]);
-    Router::new()
+    let router = Router::new()
         .route("/healthz", get(handlers::healthz))
         .route("/readyz", get(handlers::readyz))
         .route("/metrics", get(handlers::metrics))
@@ -230,7 +248,8 @@ pub fn router(state: ApiState) -> Router {
         .method_not_allowed_fallback(not_allowed)
         .route_layer(middleware::from_fn_with_state(state.clone(), count_request))
         .fallback(unmatched)
-        .with_state(state)
+        .with_state(state);
+    server::limited(router)
 }
 
 /// Counts requests by route template (never the raw path) and status.
@@ -266,6 +285,7 @@ mod tests {
             history: None,
             metrics: metrics.clone(),
             access: Arc::new(AccessList::new(&[], true)),
+            warnings: Arc::default(),
         };
         let app = router(state);
         let first_scrape = metrics.render();

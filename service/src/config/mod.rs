@@ -38,6 +38,15 @@ pub struct Service {
     pub disk_free_floor_mb: u32,
     pub open_reads: bool,
     pub log_format: LogFormat,
+    /// With a certificate and key, the API serves HTTPS only.
+    pub tls: Option<Tls>,
+}
+
+/// PEM files of the API's certificate (chain) and private key.
+#[derive(Debug, Clone, PartialEq)]
+pub struct Tls {
+    pub cert: PathBuf,
+    pub key: PathBuf,
 }
 
 string_enum! {
@@ -73,8 +82,9 @@ pub struct Link {
 pub enum LinkKind {
     /// `host:port` of a Modbus/TCP server, and the unit identifier to address.
     ModbusTcp { address: String, unit: u8 },
-    /// URL of a JSON document fetched once per tick.
-    HttpGet { url: String },
+    /// URL of a JSON document fetched once per tick; for https://, a PEM file of
+    /// certificates trusted beside the system's roots.
+    HttpGet { url: String, ca_file: Option<PathBuf> },
 }
 
 #[derive(Debug, Clone)]
@@ -511,6 +521,8 @@ fn read_config(t: &Table) -> Option<Config> {
             "disk_free_floor_mb",
             "open_reads",
             "log_format",
+            "tls_cert",
+            "tls_key",
         ],
     ) {
         Some(s) => read_service(&s),
@@ -520,7 +532,7 @@ fn read_config(t: &Table) -> Option<Config> {
     let access: Vec<_> =
         t.tables("access", &["name", "token_sha256", "role"]).iter().map(read_access).collect();
     let links: Vec<_> = t
-        .named_tables("links", &["modbus_tcp", "unit", "http_get", "timeout_ms"])
+        .named_tables("links", &["modbus_tcp", "unit", "http_get", "ca_file", "timeout_ms"])
         .iter()
         .map(|(name, l)| read_link(name, l))
         .collect();
@@ -565,6 +577,7 @@ impl Default for Service {
             disk_free_floor_mb: 1024,
             open_reads: true,
             log_format: LogFormat::Text,
+            tls: None,
         }
     }
 }
@@ -584,6 +597,18 @@ fn read_service(t: &Table) -> Option<Service> {
         }
         Some(PathBuf::from(s))
     });
+    let tls = match (t.opt::<String>("tls_cert"), t.opt::<String>("tls_key")) {
+        (Some(cert), Some(key)) => Some(Some(Tls { cert: cert.into(), key: key.into() })),
+        (None, None) => Some(None),
+        (Some(_), None) => {
+            t.problem_at("tls_cert", "needs `tls_key` beside it (the PEM file of the certificate's private key)");
+            None
+        }
+        (None, Some(_)) => {
+            t.problem_at("tls_key", "needs `tls_cert` beside it (the PEM file of the certificate)");
+            None
+        }
+    };
     Some(Service {
         listen: listen?,
         database: database?,
@@ -592,6 +617,7 @@ fn read_service(t: &Table) -> Option<Service> {
         disk_free_floor_mb: t.or("disk_free_floor_mb", d.disk_free_floor_mb)?,
         open_reads: t.or("open_reads", d.open_reads)?,
         log_format: t.or("log_format", d.log_format)?,
+        tls: tls?,
     })
 }
 
@@ -614,13 +640,19 @@ fn read_link(name: &str, t: &Table) -> Option<Link> {
     let http: Option<String> = t.opt("http_get");
     let unit = t.or("unit", 1u8);
     let timeout_ms = t.or("timeout_ms", 1000u64);
+    let ca_file: Option<String> = t.opt("ca_file");
     let kind = match (modbus, http, t.has("modbus_tcp"), t.has("http_get")) {
-        (Some(address), None, _, false) => Some(LinkKind::ModbusTcp { address, unit: unit? }),
+        (Some(address), None, _, false) => {
+            if t.has("ca_file") {
+                t.problem_at("ca_file", "`ca_file` belongs to https:// links, not Modbus ones");
+            }
+            Some(LinkKind::ModbusTcp { address, unit: unit? })
+        }
         (None, Some(url), false, _) => {
             if t.has("unit") {
                 t.problem_at("unit", "`unit` belongs to Modbus links, not HTTP ones");
             }
-            Some(LinkKind::HttpGet { url })
+            Some(LinkKind::HttpGet { url, ca_file: ca_file.map(PathBuf::from) })
         }
         (_, _, true, true) => {
             t.problem("a link is either `modbus_tcp` or `http_get`, not both");

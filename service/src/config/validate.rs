@@ -90,17 +90,12 @@ fn validate_link(link: &super::Link, p: &Problems) {
                 p.at(&format!("{path}.modbus_tcp"), format!("`{address}` is not a `host:port` address"));
             }
         }
-        LinkKind::HttpGet { url } => {
-            if url.starts_with("https://") {
-                p.at(
-                    &format!("{path}.http_get"),
-                    format!(
-                        "`{url}`: https is not supported yet; serve the readings over plain http on the \
-                         control network, or through a local proxy"
-                    ),
-                );
-            } else if url.strip_prefix("http://").is_none_or(|r| r.is_empty() || r.starts_with('/')) {
-                p.at(&format!("{path}.http_get"), format!("`{url}` is not an http:// URL"));
+        LinkKind::HttpGet { url, ca_file } => {
+            let rest = url.strip_prefix("https://").or_else(|| url.strip_prefix("http://"));
+            if rest.is_none_or(|r| r.is_empty() || r.starts_with('/')) {
+                p.at(&format!("{path}.http_get"), format!("`{url}` is not an http:// or https:// URL"));
+            } else if ca_file.is_some() && !url.starts_with("https://") {
+                p.at(&format!("{path}.ca_file"), format!("is for https:// links; `{url}` is plain http"));
             }
         }
     }

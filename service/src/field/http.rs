@@ -1,6 +1,7 @@
 //! An HTTP link: one GET of a JSON document per tick serves every tag on the link; tags
 //! are RFC 6901 JSON Pointers into it.
 
+use std::path::Path;
 use std::time::Duration;
 
 use super::error::LinkError;
@@ -18,11 +19,29 @@ pub struct HttpLink {
 }
 
 impl HttpLink {
-    pub fn new(name: &str, url: &str, timeout: Duration, reporting: Reporting) -> Result<Self, LinkError> {
+    /// A link to `url`; an https:// server's certificate must chain to the system's roots
+    /// or to one of the PEM certificates in `ca_file`.
+    pub fn new(
+        name: &str,
+        url: &str,
+        ca_file: Option<&Path>,
+        timeout: Duration,
+        reporting: Reporting,
+    ) -> Result<Self, LinkError> {
+        let error = |reason: String| LinkError::Http { link: name.to_owned(), url: url.to_owned(), reason };
         // Straight to the device on the control network: no proxy from the environment.
-        let client = reqwest::Client::builder().timeout(timeout).no_proxy().build().map_err(|e| {
-            LinkError::Http { link: name.to_owned(), url: url.to_owned(), reason: e.to_string() }
-        })?;
+        let mut builder = reqwest::Client::builder().timeout(timeout).no_proxy();
+        if let Some(file) = ca_file {
+            let pem = std::fs::read(file)
+                .map_err(|e| error(format!("cannot read ca_file {}: {e}", file.display())))?;
+            let certificates = reqwest::Certificate::from_pem_bundle(&pem)
+                .map_err(|e| error(format!("ca_file {} is not PEM certificates: {e}", file.display())))?;
+            if certificates.is_empty() {
+                return Err(error(format!("ca_file {} holds no PEM certificate", file.display())));
+            }
+            builder = builder.tls_certs_merge(certificates);
+        }
+        let client = builder.build().map_err(|e| error(describe(&e)))?;
         Ok(HttpLink { name: name.to_owned(), url: url.to_owned(), client, reporting })
     }
 
@@ -89,8 +108,24 @@ fn describe(e: &reqwest::Error) -> String {
     if e.is_timeout() {
         "no answer within the timeout".into()
     } else if e.is_connect() {
-        format!("cannot connect ({e})")
+        format!("cannot connect ({})", with_causes(e))
     } else {
-        e.to_string()
+        with_causes(e)
     }
+}
+
+/// The error and what caused it, down the chain: a refused certificate says why only
+/// in its causes.
+fn with_causes(e: &dyn std::error::Error) -> String {
+    let mut text = e.to_string();
+    let mut cause = e.source();
+    while let Some(c) = cause {
+        let c_text = c.to_string();
+        if !text.contains(&c_text) {
+            text.push_str(": ");
+            text.push_str(&c_text);
+        }
+        cause = c.source();
+    }
+    text
 }

@@ -40,10 +40,11 @@ impl Links {
                         ModbusLink::reporting_to(&link.name, address, *unit, timeout, cap, reporting.clone());
                     links.modbus.insert(link.name.clone(), m);
                 }
-                LinkKind::HttpGet { url } => {
+                LinkKind::HttpGet { url, ca_file } => {
+                    let trusted = ca_file.as_deref();
                     links.http.insert(
                         link.name.clone(),
-                        HttpLink::new(&link.name, url, timeout, reporting.clone())?,
+                        HttpLink::new(&link.name, url, trusted, timeout, reporting.clone())?,
                     );
                 }
             }
