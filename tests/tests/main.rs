@@ -8,6 +8,7 @@ mod bad_input;
 mod bump_test;
 mod check_command;
 mod classic_loop;
+mod conformance;
 mod constraints;
 mod constraints_live;
 mod drive;

@@ -67,6 +67,11 @@ impl AccessList {
         self.entries.is_empty()
     }
 
+    /// Whether callers without a token may read.
+    pub fn open_reads(&self) -> bool {
+        self.open_reads
+    }
+
     /// The caller behind an `Authorization` header value. Every entry is compared, in
     /// constant time, so timing says nothing about which hash was close.
     fn identify(&self, authorization: Option<&str>) -> Option<Caller> {

@@ -12,7 +12,9 @@ use serde_json::{Value, json};
 
 use super::{ApiError, ApiState, JsonBody, Operator, PathParams, QueryParams, Reader, openapi};
 use crate::config::{MethodKind, Mode, Range};
-use crate::history::{BumpTestRow, EventRow, History, Resolution, SampleRow, parse_rfc3339, rfc3339};
+use crate::history::{
+    BumpTestRow, EventRow, History, Resolution, Retention, SampleRow, parse_rfc3339, rfc3339,
+};
 use crate::supervisor::CommandError;
 use crate::supervisor::status::LoopStatus;
 
@@ -53,8 +55,15 @@ pub async fn metrics(State(state): State<ApiState>) -> impl IntoResponse {
     ([(header::CONTENT_TYPE, "text/plain; version=0.0.4; charset=utf-8")], state.metrics.render())
 }
 
-pub async fn openapi(_: Reader) -> Json<Value> {
-    Json(openapi::document())
+/// The OpenAPI document, with this service's loops as examples and its limits.
+pub async fn openapi(State(state): State<ApiState>, _: Reader) -> Json<Value> {
+    let rollup_days = state.history.as_ref().map_or(Retention::default(), History::retention).rollup_days;
+    let site = openapi::Site {
+        loops: state.loops.iter().map(|l| l.config.as_ref()).collect(),
+        open_reads: state.access.open_reads(),
+        window_max_days: trend_window_max_days(rollup_days),
+    };
+    Json(openapi::document_for(&site))
 }
 
 pub async fn loops(State(state): State<ApiState>, _: Reader) -> Json<Vec<LoopStatus>> {
@@ -176,6 +185,24 @@ pub const TREND_WINDOW_DEFAULT: &str = "1h";
 /// Buckets of a trend: the default, and the most one request may ask for.
 pub const TREND_POINTS_DEFAULT: u32 = 300;
 pub const TREND_POINTS_MAX: u32 = 2000;
+/// The longest trend window in any case: a hundred years of 365 days, inside the hundred
+/// years a duration may be.
+pub const TREND_WINDOW_MAX_DAYS: u32 = 36_500;
+
+/// The longest trend window, in days: as long as rollups are kept, at most
+/// [`TREND_WINDOW_MAX_DAYS`].
+pub fn trend_window_max_days(rollup_days: u32) -> u32 {
+    rollup_days.min(TREND_WINDOW_MAX_DAYS)
+}
+
+/// Whether `window` is written as the document says: digits, an optional fraction, and
+/// one of the units s, m, h or d (no sign, no spaces).
+fn plain_window(window: &str) -> bool {
+    let Some(number) = window.strip_suffix(['s', 'm', 'h', 'd']) else { return false };
+    let (whole, fraction) = number.split_once('.').map_or((number, None), |(w, f)| (w, Some(f)));
+    let digits = |part: &str| !part.is_empty() && part.bytes().all(|b| b.is_ascii_digit());
+    digits(whole) && fraction.is_none_or(digits)
+}
 
 #[derive(Debug, Deserialize)]
 #[serde(deny_unknown_fields)]
@@ -198,17 +225,26 @@ pub async fn trend(
     let handle = state.find(&name)?;
     let history = state.history()?;
     let window = query.window.as_deref().unwrap_or(TREND_WINDOW_DEFAULT);
+    if !plain_window(window) {
+        return Err(ApiError::BadRequest(format!(
+            "window: `{window}` is not a duration like 90s, 45m, 8h or 2d (digits, then s, m, h or d)"
+        )));
+    }
     let window_s =
         crate::history::parse_duration_s(window).map_err(|e| ApiError::BadRequest(format!("window: {e}")))?;
-    let max_days = history.retention().rollup_days;
+    let rollup_days = history.retention().rollup_days;
+    let max_days = trend_window_max_days(rollup_days);
     if window_s > f64::from(max_days) * 86_400.0 {
-        return Err(ApiError::BadRequest(format!(
-            "window: `{window}` is longer than the {max_days} days rollups are kept ({max_days}d)"
-        )));
+        return Err(ApiError::BadRequest(if max_days < rollup_days {
+            format!("window: `{window}` is longer than the longest trend window ({max_days}d)")
+        } else {
+            format!("window: `{window}` is longer than the {max_days} days rollups are kept ({max_days}d)")
+        }));
     }
     let points = limit_param(query.points, TREND_POINTS_DEFAULT, TREND_POINTS_MAX)
         .map_err(|_| ApiError::BadRequest(format!("points: must be between 1 and {TREND_POINTS_MAX}")))?;
-    let window_ms = (window_s * 1000.0).round() as i64;
+    // A window under a millisecond is one: buckets are whole milliseconds.
+    let window_ms = ((window_s * 1000.0).round() as i64).max(1);
     let bucket_ms = (window_ms + i64::from(points) - 1) / i64::from(points);
     let now_ms = crate::history::now_ms();
     let until_ms = (now_ms / bucket_ms + 1) * bucket_ms;
