@@ -1,13 +1,16 @@
 //! Fault tests: the real binary against a real Modbus peer on loopback, with every fault
-//! an operator worries about. Each prints what it measured (`cargo test -- --nocapture`
-//! shows it); docs/operation.md's reliability table comes from these lines.
+//! an operator worries about. Each waits for what it checks with a generous deadline and
+//! prints how long it took (`cargo test -- --nocapture` shows it). The reliability run,
+//! `RIDGELINE_RELIABILITY_RUN=1` with one test at a time on a quiet machine, also holds
+//! those times to their precise bounds; docs/operation.md's reliability table comes from
+//! its lines. An ordinary run on a loaded machine cannot fail on timing alone.
 
 use std::time::{Duration, Instant};
 
 use ridgeline::api::token_sha256;
 use ridgeline_tests::{
-    BadPlc, bad_plc, f32_words, get_json, http_request, read_holding_registers, ridgeline, spawn_service,
-    wait_until, write_holding_registers,
+    BadPlc, Peer, bad_plc, f32_words, get_json, http_request, python_peer, read_holding_registers, ridgeline,
+    spawn_service, wait_until, write_holding_registers,
 };
 
 use crate::rig::Rig;
@@ -16,8 +19,10 @@ use crate::rig::Rig;
 const TICK: Duration = Duration::from_millis(50);
 const STALE: Duration = Duration::from_secs(1);
 /// Polling the API and the register (every 5 ms, one request at a time) adds this much
-/// to a measured time, at most, on a busy 2-core machine.
+/// to a measured time, at most, in the reliability run.
 const MEASURING: Duration = Duration::from_millis(100);
+/// How long any one condition is waited for: generous, for a loaded 2-core machine.
+const PATIENCE: Duration = Duration::from_secs(30);
 const OPERATOR: &str = "fault-test-operator-token";
 
 fn access() -> String {
@@ -31,19 +36,35 @@ fn state(rig: &Rig) -> String {
     rig.status().map(|s| s["state"].as_str().unwrap_or("").to_owned()).unwrap_or_default()
 }
 
-/// Waits until `condition` holds, polling every 5 ms; how long that took.
-fn time_until(what: &str, limit: Duration, mut condition: impl FnMut() -> bool) -> Duration {
+/// Whether this is the reliability run, which holds measured times to precise bounds.
+fn reliability_run() -> bool {
+    std::env::var_os("RIDGELINE_RELIABILITY_RUN").is_some_and(|v| v == "1")
+}
+
+/// Waits until `condition` holds (at most `PATIENCE`); how long that took. Polls every
+/// 5 ms in the reliability run, every 25 ms otherwise (each poll is a new connection).
+fn time_until(what: &str, mut condition: impl FnMut() -> bool) -> Duration {
+    let poll = Duration::from_millis(if reliability_run() { 5 } else { 25 });
     let started = Instant::now();
     while !condition() {
-        assert!(started.elapsed() < limit, "timed out after {limit:?} waiting until {what}");
-        std::thread::sleep(Duration::from_millis(5));
+        assert!(started.elapsed() < PATIENCE, "timed out after {PATIENCE:?} waiting until {what}");
+        std::thread::sleep(poll);
     }
     started.elapsed()
 }
 
+/// Prints a measured time; the reliability run also holds it to `bound` (plus what
+/// polling adds).
+fn timed(what: &str, took: Duration, bound: Duration) {
+    eprintln!("measured: {what} in {took:?} (bound {bound:?})");
+    if reliability_run() {
+        assert!(took <= bound + MEASURING, "{what}: {took:?}, more than {bound:?}");
+    }
+}
+
 /// Waits until the loop is in `wanted`; how long that took.
-fn time_until_state(rig: &Rig, wanted: &str, limit: Duration) -> Duration {
-    time_until(&format!("the loop is {wanted}"), limit, || state(rig) == wanted)
+fn time_until_state(rig: &Rig, wanted: &str) -> Duration {
+    time_until(&format!("the loop is {wanted}"), || state(rig) == wanted)
 }
 
 fn put_mode(rig: &Rig, mode: &str) -> ridgeline_tests::HttpAnswer {
@@ -60,19 +81,16 @@ fn a_cut_link_trips_to_fallback_and_safe_lands_on_the_first_tick_it_answers_agai
     let _service = rig.service();
     rig.wait_writing();
     sim.stop();
-    let to_fallback = time_until_state(&rig, "fallback", Duration::from_secs(10));
-    eprintln!("measured: link cut -> fallback in {to_fallback:?} (stale_after_s {STALE:?}, tick {TICK:?})");
-    // Source: issue requirement, fallback within stale_after_s plus one tick (plus our polling).
-    assert!(to_fallback <= STALE + TICK + MEASURING, "{to_fallback:?}");
+    let to_fallback = time_until_state(&rig, "fallback");
+    // Source: issue requirement, fallback within stale_after_s plus one tick.
+    timed("link cut -> fallback", to_fallback, STALE + TICK);
     let status = rig.status().unwrap();
     assert_eq!(status["fallback_reason"], "stale");
 
     let _sim = rig.sim();
-    let to_safe =
-        time_until("safe is in the register", Duration::from_secs(5), || rig.setpoint() == Some(1.0));
-    eprintln!("measured: PLC back -> safe setpoint in the register in {to_safe:?}");
+    let to_safe = time_until("safe is in the register", || rig.setpoint() == Some(1.0));
     // Source: issue requirement, the fallback value lands on the first tick the link answers.
-    assert!(to_safe <= TICK + MEASURING, "{to_safe:?}");
+    timed("PLC back -> safe setpoint in the register", to_safe, TICK);
     let tripped = rig.event("a trip event", |e| e["kind"] == "tripped");
     assert_eq!(tripped["detail"]["trip"], "stale");
     assert_eq!(tripped["actor"], "system");
@@ -84,12 +102,12 @@ fn an_objective_frozen_outside_its_plausible_range_trips_with_that_reason() {
     let rig = Rig::new("").edit("stale_after_s = 1", "stale_after_s = 1\nobjective_range = [0.0, 5.0]");
     let _sim = rig.sim();
     let _service = rig.service();
-    let took = time_until_state(&rig, "fallback", Duration::from_secs(10));
-    eprintln!("measured: implausible objective -> fallback in {took:?} after the API answered");
-    assert!(took <= TICK + MEASURING, "at once, not after stale_after_s: {took:?}");
+    let took = time_until_state(&rig, "fallback");
+    // At once, not after stale_after_s: the reason says which check tripped.
+    timed("implausible objective -> fallback, after the API answered", took, TICK);
     let status = rig.status().unwrap();
     assert_eq!(status["fallback_reason"], "out_of_range");
-    wait_until("safe is in the register", Duration::from_secs(5), || rig.setpoint() == Some(1.0));
+    wait_until("safe is in the register", PATIENCE, || rig.setpoint() == Some(1.0));
 }
 
 #[test]
@@ -98,8 +116,8 @@ fn a_nan_objective_trips_and_no_nan_is_ever_written() {
     let rig = Rig::seeking("", "y / (y - y)");
     let _sim = rig.sim();
     let _service = rig.service();
-    let took = time_until_state(&rig, "fallback", Duration::from_secs(10));
-    eprintln!("measured: NaN objective -> fallback in {took:?} after the API answered");
+    let took = time_until_state(&rig, "fallback");
+    timed("NaN objective -> fallback, after the API answered", took, TICK);
     assert_eq!(rig.status().unwrap()["fallback_reason"], "not_finite");
     for _ in 0..20 {
         let v = rig.setpoint().expect("register readable");
@@ -116,7 +134,7 @@ fn without_the_plcs_permit_nothing_is_written_and_its_return_restarts_bumpless()
     // The operator at the HMI withholds permission before the service starts.
     assert!(write_holding_registers(rig.plant_port(), 300, &f32_words(0.0)));
     let _service = rig.service();
-    wait_until("no_permit", Duration::from_secs(10), || state(&rig) == "no_permit");
+    wait_until("no_permit", PATIENCE, || state(&rig) == "no_permit");
     let untouched = read_holding_registers(rig.plant_port(), 200, 2).unwrap();
     for _ in 0..40 {
         std::thread::sleep(TICK);
@@ -131,9 +149,7 @@ fn without_the_plcs_permit_nothing_is_written_and_its_return_restarts_bumpless()
     assert!(write_holding_registers(rig.plant_port(), 200, &f32_words(2.7)));
     // Permission back: the loop restarts from what the PLC holds now, then seeks.
     assert!(write_holding_registers(rig.plant_port(), 300, &f32_words(1.0)));
-    let took = time_until("the loop writes again", Duration::from_secs(5), || {
-        rig.setpoint().is_some_and(|v| (v - 2.7).abs() > 1e-6)
-    });
+    let took = time_until("the loop writes again", || rig.setpoint().is_some_and(|v| (v - 2.7).abs() > 1e-6));
     eprintln!("measured: permit back -> writing in {took:?}");
     let first = rig.setpoint().unwrap();
     // The dither (0.1) and one tick at the rate limit (0.1) away from the operator's 2.7,
@@ -150,7 +166,7 @@ fn manual_recovery_is_refused_with_409_while_the_fault_persists_and_accepted_aft
     let _service = rig.service();
     rig.wait_writing();
     sim.stop();
-    time_until_state(&rig, "fallback", Duration::from_secs(10));
+    time_until_state(&rig, "fallback");
     let refused = put_mode(&rig, "seeking");
     assert_eq!(refused.status, 409, "{}", refused.body);
     assert_eq!(refused.json()["error"]["code"], "conflict");
@@ -158,7 +174,7 @@ fn manual_recovery_is_refused_with_409_while_the_fault_persists_and_accepted_aft
     assert_eq!(state(&rig), "fallback");
 
     let _sim = rig.sim();
-    wait_until("reads are good again", Duration::from_secs(5), || {
+    wait_until("reads are good again", PATIENCE, || {
         rig.status().and_then(|s| s["objective"].as_f64()).is_some_and(|j| j > 0.0)
             && put_mode(&rig, "seeking").status == 200
     });
@@ -175,9 +191,9 @@ fn automatic_recovery_returns_to_seeking_after_the_healthy_interval() {
     let _service = rig.service();
     rig.wait_writing();
     sim.stop();
-    time_until_state(&rig, "fallback", Duration::from_secs(10));
+    time_until_state(&rig, "fallback");
     let _sim = rig.sim();
-    let took = time_until_state(&rig, "seeking", Duration::from_secs(10));
+    let took = time_until_state(&rig, "seeking");
     eprintln!("measured: PLC back -> seeking again (recover_after_s 1 s) in {took:?}");
     assert!(took >= Duration::from_millis(900), "not before the healthy interval: {took:?}");
     rig.event("an automatic recovery", |e| e["kind"] == "recovered" && e["actor"] == "system");
@@ -185,43 +201,38 @@ fn automatic_recovery_returns_to_seeking_after_the_healthy_interval() {
 
 #[test]
 fn the_heartbeat_increments_every_tick_and_wraps_after_65535() {
-    let rig = Rig::new("").edit(
-        "[[loops.inputs]]",
-        "[loops.heartbeat]\nlink = \"plc\"\nholding_register = 400\n\n[[loops.inputs]]",
-    );
-    let _sim = rig.sim();
-    // The PLC's heartbeat word stands at 65533: the service goes on from there.
-    assert!(write_holding_registers(rig.plant_port(), 400, &[65533]));
-    // The register is watched from before the service starts, ten times a tick, so no
-    // count goes unseen however long the start takes.
-    let port = rig.plant_port();
-    let seen = std::sync::Mutex::new(Vec::new());
-    let done = std::sync::atomic::AtomicBool::new(false);
-    let _service = std::thread::scope(|scope| {
-        scope.spawn(|| {
-            while !done.load(std::sync::atomic::Ordering::Relaxed) {
-                if let Some(w) = read_holding_registers(port, 400, 1) {
-                    let mut seen = seen.lock().unwrap();
-                    if seen.last() != Some(&w[0]) {
-                        seen.push(w[0]);
-                    }
-                }
-                std::thread::sleep(TICK / 10);
-            }
-        });
-        let service = rig.service();
-        wait_until("the heartbeat wrapped", Duration::from_secs(10), || {
-            seen.lock().unwrap().iter().any(|&v| v < 100)
-        });
-        done.store(true, std::sync::atomic::Ordering::Relaxed);
-        service
+    // A pymodbus server plays the PLC and logs every write it decodes, so no count goes
+    // unseen however busy the machine is. The PLC's heartbeat word stands at 65533: the
+    // service goes on from there.
+    let layout = serde_json::json!({"unit": 1, "values": [
+        {"table": "input", "address": 100, "kind": "f32", "order": "big", "raw": 8.0, "scale": 1.0, "offset": 0.0, "busy": false},
+        {"table": "holding", "address": 200, "kind": "f32", "order": "big", "raw": 2.0, "scale": 1.0, "offset": 0.0, "busy": false},
+        {"table": "holding", "address": 400, "kind": "u16", "order": "big", "raw": 65533, "scale": 1.0, "offset": 0.0, "busy": false},
+    ]});
+    let mut command = python_peer("modbus_server.py");
+    command.arg(layout.to_string());
+    let (plc, ready) = Peer::start("pymodbus server (tests/peers/modbus_server.py)", command, PATIENCE, |l| {
+        l.starts_with(r#"{"ready""#)
     });
-    let seen = seen.into_inner().unwrap();
-    // Source: issue requirement, a u16 counter that wraps at 65535 -> 0.
-    let from = seen.iter().position(|&v| v == 65534).expect("counting from the register's value");
-    assert_eq!(&seen[from..from + 2], &[65534, 65535]);
-    let wrapped = seen.iter().position(|&v| v == 0).expect("wrapped to 0");
-    assert!(wrapped > from && seen[wrapped - 1] == 65535, "{seen:?}");
+    let port = serde_json::from_str::<serde_json::Value>(&ready).unwrap()["port"].as_u64().unwrap() as u16;
+    let rig = Rig::new("")
+        .edit("[[loops.inputs]]", "[loops.heartbeat]\nlink = \"plc\"\nholding_register = 400\n\n[[loops.inputs]]")
+        .with_plant_port(port);
+    let _service = rig.service();
+    let mut beats = Vec::new();
+    let deadline = Instant::now() + PATIENCE;
+    while beats.len() < 4 {
+        assert!(Instant::now() < deadline, "four heartbeats not written within {PATIENCE:?}: {beats:?}");
+        let Some(line) = plc.next_line(Duration::from_secs(1)) else { continue };
+        let record: serde_json::Value = serde_json::from_str(&line).unwrap();
+        if record["event"] == "write" && record["address"] == 400 {
+            // Source: reference library pymodbus 3.16.1, decoding the register written.
+            beats.push(record["decoded"]["400"].as_f64().unwrap() as u32);
+        }
+    }
+    // Source: issue requirement, a u16 counter that counts on from the register's value,
+    // one step per tick, and wraps at 65535 -> 0.
+    assert_eq!(&beats[..4], &[65534, 65535, 0, 1], "{beats:?}");
 }
 
 #[test]
@@ -233,7 +244,7 @@ fn after_kill_9_a_restart_resumes_from_the_stored_estimate() {
         rig.estimate().is_some_and(|e| e > 2.4)
     });
     // History is written in batches: wait until an estimate that far is stored.
-    wait_until("an estimate above 2.4 is in history", Duration::from_secs(10), || {
+    wait_until("an estimate above 2.4 is in history", PATIENCE, || {
         let since = ridgeline::history::rfc3339(ridgeline::history::now_ms() - 10_000);
         get_json(rig.api(), &format!("/api/v1/loops/bowl/samples?since={since}&limit=10000"))
             .and_then(|s| s.as_array().cloned())
@@ -249,7 +260,7 @@ fn after_kill_9_a_restart_resumes_from_the_stored_estimate() {
     let restarted = || {
         rig.events().into_iter().find(|e| e["kind"] == "loop_started" && e["id"].as_i64() > Some(first_run))
     };
-    wait_until("the restarted loop started", Duration::from_secs(10), || restarted().is_some());
+    wait_until("the restarted loop started", PATIENCE, || restarted().is_some());
     eprintln!("measured: kill -9, restart -> resumed from the stored estimate in {:?}", restarting.elapsed());
     let started = restarted().unwrap();
     let u = &started["detail"]["inputs"]["u"];
@@ -266,18 +277,18 @@ fn after_kill_9_a_restart_resumes_from_the_stored_estimate() {
 fn trips_before_it_could_start(behaviour: BadPlc, label: &str) {
     let rig = Rig::new("").with_plant_port(bad_plc(behaviour, None));
     let service = rig.service();
-    let took = time_until_state(&rig, "fallback", STALE * 5);
-    eprintln!("measured: PLC {label} from the start -> fallback in {took:?} after the API answered");
+    let took = time_until_state(&rig, "fallback");
+    timed(&format!("PLC {label} from the start -> fallback, after the API answered"), took, STALE * 5);
     let status = rig.status().unwrap();
     assert_eq!(status["fallback_reason"], "stale", "{status}");
     assert_eq!(status["inputs"][0]["estimate"], serde_json::Value::Null, "never started: {status}");
     assert_eq!(status["inputs"][0]["applied"], 1.0, "safe is what it tries to write: {status}");
     rig.event("a stale trip", |e| e["kind"] == "tripped" && e["detail"]["trip"] == "stale");
     let before = status["ticks"].as_u64().unwrap();
-    wait_until("the loop keeps ticking", Duration::from_secs(10), || rig.ticks() > before);
+    wait_until("the loop keeps ticking", PATIENCE, || rig.ticks() > before);
     let stopping = Instant::now();
     assert_eq!(service.terminate(), Some(0), "it stops cleanly");
-    assert!(stopping.elapsed() < Duration::from_secs(10), "stopped in {:?}", stopping.elapsed());
+    assert!(stopping.elapsed() < PATIENCE, "stopped in {:?}", stopping.elapsed());
 }
 
 #[test]
@@ -303,7 +314,7 @@ fn a_cut_link_on_a_permitted_loop_pages_as_a_fallback_and_safe_lands_once_the_pl
     // The permit is on the cut link too. It cannot be read, which is a fault of the link,
     // not the PLC saying no: the loop must never show no_permit on the way to fallback.
     let mut seen = Vec::new();
-    wait_until("the loop is in fallback", Duration::from_secs(10), || {
+    wait_until("the loop is in fallback", PATIENCE, || {
         let now = state(&rig);
         if seen.last() != Some(&now) {
             seen.push(now.clone());
@@ -316,7 +327,7 @@ fn a_cut_link_on_a_permitted_loop_pages_as_a_fallback_and_safe_lands_once_the_pl
     assert_eq!(status["permitted"], false, "no permit stands while it cannot be read");
     // The series the fallback alert (deploy/alerts.yml) pages on.
     let mut metrics = String::new();
-    wait_until("the fallback series is 1", Duration::from_secs(5), || {
+    wait_until("the fallback series is 1", PATIENCE, || {
         metrics = ridgeline_tests::http_get(rig.api(), "/metrics").map(|m| m.1).unwrap_or_default();
         metrics.contains("ridgeline_loop_state{loop=\"bowl\",state=\"fallback\"} 1")
     });
@@ -325,7 +336,7 @@ fn a_cut_link_on_a_permitted_loop_pages_as_a_fallback_and_safe_lands_once_the_pl
     assert_eq!(trip["detail"]["to"], "fallback");
     // The PLC comes back and permits (the plant's permit starts at 1): safe lands.
     let _sim = rig.sim();
-    wait_until("safe is in the register", Duration::from_secs(5), || rig.setpoint() == Some(1.0));
+    wait_until("safe is in the register", PATIENCE, || rig.setpoint() == Some(1.0));
     assert_eq!(state(&rig), "fallback");
 }
 
@@ -338,13 +349,12 @@ fn trips_when_the_plc_turns(behaviour: BadPlc, label: &str, slack: Duration) {
     rig.wait_writing();
     sim.stop();
     bad_plc(behaviour, Some(rig.plant_port()));
-    let took = time_until_state(&rig, "fallback", Duration::from_secs(10));
-    eprintln!("measured: PLC {label} -> fallback in {took:?}");
-    assert!(took <= STALE + TICK + slack + MEASURING, "{took:?}");
+    let took = time_until_state(&rig, "fallback");
+    timed(&format!("PLC {label} -> fallback"), took, STALE + TICK + slack);
     assert_eq!(rig.status().unwrap()["fallback_reason"], "stale");
     // And it keeps ticking: no task is stuck on the misbehaving PLC.
     let before = rig.status().unwrap()["ticks"].as_u64().unwrap();
-    wait_until("the loop keeps ticking", Duration::from_secs(10), || rig.ticks() > before);
+    wait_until("the loop keeps ticking", PATIENCE, || rig.ticks() > before);
 }
 
 #[test]
@@ -379,7 +389,7 @@ fn a_second_service_on_the_same_history_refuses_to_start_and_names_the_first() {
     let starts = rig.events().iter().filter(|e| e["kind"] == "loop_started").count();
     assert_eq!(starts, 1);
     let ticks = rig.ticks();
-    wait_until("the first service ticks on", Duration::from_secs(5), || rig.ticks() > ticks);
+    wait_until("the first service ticks on", PATIENCE, || rig.ticks() > ticks);
 }
 
 #[test]
