@@ -211,12 +211,16 @@ fn the_heartbeat_increments_every_tick_and_wraps_after_65535() {
     ]});
     let mut command = python_peer("modbus_server.py");
     command.arg(layout.to_string());
-    let (plc, ready) = Peer::start("pymodbus server (tests/peers/modbus_server.py)", command, PATIENCE, |l| {
-        l.starts_with(r#"{"ready""#)
-    });
+    let (plc, ready) =
+        Peer::start("pymodbus server (tests/peers/modbus_server.py)", command, PATIENCE, |l| {
+            l.starts_with(r#"{"ready""#)
+        });
     let port = serde_json::from_str::<serde_json::Value>(&ready).unwrap()["port"].as_u64().unwrap() as u16;
     let rig = Rig::new("")
-        .edit("[[loops.inputs]]", "[loops.heartbeat]\nlink = \"plc\"\nholding_register = 400\n\n[[loops.inputs]]")
+        .edit(
+            "[[loops.inputs]]",
+            "[loops.heartbeat]\nlink = \"plc\"\nholding_register = 400\n\n[[loops.inputs]]",
+        )
         .with_plant_port(port);
     let _service = rig.service();
     let mut beats = Vec::new();

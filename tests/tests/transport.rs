@@ -30,14 +30,19 @@ fn make_pki(dir: &Path) -> Pki {
     let p256 = ["-newkey", "ec", "-pkeyopt", "ec_paramgen_curve:prime256v1", "-nodes"];
     openssl(
         dir,
-        &[&["req", "-x509"][..], &p256, &["-keyout", "ca.key", "-out", "ca.pem", "-days", "2"], &[
-            "-subj",
-            "/CN=Ridgeline test site CA",
-            "-addext",
-            "basicConstraints=critical,CA:TRUE",
-            "-addext",
-            "keyUsage=critical,keyCertSign",
-        ]]
+        &[
+            &["req", "-x509"][..],
+            &p256,
+            &["-keyout", "ca.key", "-out", "ca.pem", "-days", "2"],
+            &[
+                "-subj",
+                "/CN=Ridgeline test site CA",
+                "-addext",
+                "basicConstraints=critical,CA:TRUE",
+                "-addext",
+                "keyUsage=critical,keyCertSign",
+            ],
+        ]
         .concat(),
     );
     openssl(
@@ -50,17 +55,37 @@ fn make_pki(dir: &Path) -> Pki {
          keyUsage=critical,digitalSignature\nextendedKeyUsage=serverAuth\n",
     )
     .unwrap();
-    openssl(dir, &[
-        "x509", "-req", "-in", "api.csr", "-CA", "ca.pem", "-CAkey", "ca.key", "-CAcreateserial", "-out", "api.pem",
-        "-days", "2", "-extfile", "api.ext",
-    ]);
+    openssl(
+        dir,
+        &[
+            "x509",
+            "-req",
+            "-in",
+            "api.csr",
+            "-CA",
+            "ca.pem",
+            "-CAkey",
+            "ca.key",
+            "-CAcreateserial",
+            "-out",
+            "api.pem",
+            "-days",
+            "2",
+            "-extfile",
+            "api.ext",
+        ],
+    );
     Pki { ca: dir.join("ca.pem"), cert: dir.join("api.pem"), key: dir.join("api.key") }
 }
 
 fn with_tls(rig: Rig, pki: &Pki) -> Rig {
     rig.edit(
         "listen = \"127.0.0.1:0\"",
-        &format!("listen = \"127.0.0.1:0\"\ntls_cert = \"{}\"\ntls_key = \"{}\"", pki.cert.display(), pki.key.display()),
+        &format!(
+            "listen = \"127.0.0.1:0\"\ntls_cert = \"{}\"\ntls_key = \"{}\"",
+            pki.cert.display(),
+            pki.key.display()
+        ),
     )
 }
 
@@ -132,7 +157,11 @@ print(json.dumps({{"status": status, "ready": json.loads(body), "version": versi
 #[test]
 fn a_missing_certificate_stops_the_start_with_a_sentence_naming_the_files() {
     let rig = Rig::new("");
-    let pki = Pki { ca: rig.dir.path().join("ca.pem"), cert: rig.dir.path().join("nowhere.pem"), key: rig.dir.path().join("nowhere.key") };
+    let pki = Pki {
+        ca: rig.dir.path().join("ca.pem"),
+        cert: rig.dir.path().join("nowhere.pem"),
+        key: rig.dir.path().join("nowhere.key"),
+    };
     let rig = with_tls(rig, &pki);
     rig.write_config();
     let run = ridgeline_tests::ridgeline(&["run", "--config", rig.config.to_str().unwrap()]);
@@ -143,8 +172,10 @@ fn a_missing_certificate_stops_the_start_with_a_sentence_naming_the_files() {
 
 #[test]
 fn tokens_in_clear_text_beyond_loopback_are_warned_about_in_the_log_readyz_and_the_page() {
-    let access =
-        format!("\n[[access]]\nname = \"night-shift\"\ntoken_sha256 = \"{}\"\nrole = \"operator\"\n", token_sha256("t"));
+    let access = format!(
+        "\n[[access]]\nname = \"night-shift\"\ntoken_sha256 = \"{}\"\nrole = \"operator\"\n",
+        token_sha256("t")
+    );
     let rig = Rig::new("").with_tables(&access).edit("listen = \"127.0.0.1:0\"", "listen = \"0.0.0.0:0\"");
     let _sim = rig.sim();
     let service = rig.service();
@@ -166,9 +197,12 @@ fn tokens_in_clear_text_beyond_loopback_are_warned_about_in_the_log_readyz_and_t
 fn readings_over_https(pki: &Pki) -> (Peer, u16) {
     let mut command = python_peer("https_readings.py");
     command.arg(&pki.cert).arg(&pki.key);
-    let (peer, line) = Peer::start("https readings (tests/peers/https_readings.py)", command, Duration::from_secs(20), |l| {
-        l.contains("\"port\"")
-    });
+    let (peer, line) = Peer::start(
+        "https readings (tests/peers/https_readings.py)",
+        command,
+        Duration::from_secs(20),
+        |l| l.contains("\"port\""),
+    );
     let port = serde_json::from_str::<serde_json::Value>(&line).unwrap()["port"].as_u64().unwrap();
     (peer, port as u16)
 }

@@ -601,7 +601,10 @@ fn read_service(t: &Table) -> Option<Service> {
         (Some(cert), Some(key)) => Some(Some(Tls { cert: cert.into(), key: key.into() })),
         (None, None) => Some(None),
         (Some(_), None) => {
-            t.problem_at("tls_cert", "needs `tls_key` beside it (the PEM file of the certificate's private key)");
+            t.problem_at(
+                "tls_cert",
+                "needs `tls_key` beside it (the PEM file of the certificate's private key)",
+            );
             None
         }
         (None, Some(_)) => {
