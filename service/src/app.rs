@@ -83,8 +83,9 @@ impl App {
         let mut tasks = Vec::new();
         let mut handles: Vec<LoopHandle> = Vec::new();
         for index in 0..config.loops.len() {
-            let (task, handle) =
+            let (mut task, handle) =
                 LoopTask::new(config, index, &links, reporting.clone(), Some(history.clone()));
+            task.set_speed(options.speed);
             let period = Duration::from_secs_f64(task.tick_s() / options.speed);
             tasks.push((task, period));
             handles.push(handle);

@@ -126,6 +126,8 @@ pub struct LoopTask {
     history: Option<History>,
     /// The origin of the loop's own clock, for the watchdog.
     started_at: Instant,
+    /// Plant seconds per wall second: 1 but in the demo's (and soak's) time compression.
+    speed: f64,
     objective_at: Option<i64>,
     last_tick: Option<u64>,
     skipped_ticks: u64,
@@ -177,6 +179,7 @@ impl LoopTask {
             reporting,
             history,
             started_at: Instant::now(),
+            speed: 1.0,
             objective_at: None,
             last_tick: None,
             skipped_ticks: 0,
@@ -203,8 +206,15 @@ impl LoopTask {
         self.skipped_ticks
     }
 
+    /// Runs the loop's clock `speed` times faster than the wall, so its watchdog and
+    /// recovery intervals count plant seconds like its ticks (the demo's time compression).
+    pub fn set_speed(&mut self, speed: f64) {
+        self.speed = speed;
+    }
+
+    /// Plant seconds since the task was made.
     fn now_s(&self) -> f64 {
-        self.started_at.elapsed().as_secs_f64()
+        self.started_at.elapsed().as_secs_f64() * self.speed
     }
 
     /// One tick at tick index `n`: start if not started, read the tags, let the control
