@@ -58,6 +58,11 @@ pub enum Command {
     Run {
         #[arg(long, value_name = "FILE")]
         config: PathBuf,
+        /// Tick the loops this many times faster than real time, against a plant served by
+        /// `ridgeline sim --speed` at the same speed: for soak runs (`tests/benches/soak/`),
+        /// never for a real PLC, whose setpoints would move that many times too fast.
+        #[arg(long, value_name = "X", default_value_t = 1.0, value_parser = parse_positive, hide = true)]
+        speed: f64,
     },
     /// Serve a plant model over Modbus/TCP until stopped.
     Sim {
@@ -142,7 +147,7 @@ pub fn run(cli: Cli) -> ExitCode {
             demo(crate::demo::Options { listen, speed, minutes, database })
         }
         Command::Token { name, role } => token(&name, &role),
-        Command::Run { config } => serve(&config),
+        Command::Run { config, speed } => serve(&config, speed),
         Command::Sim { plant, listen, speed } => simulate(&plant, listen, speed),
         Command::Check { config } => check(&config),
         Command::Rehearse { config, plant, duration, plot, csv, json, separately } => rehearse(
@@ -424,14 +429,15 @@ pub async fn stop_signal() {
     let _ = interrupt.await;
 }
 
-fn serve(path: &Path) -> ExitCode {
+fn serve(path: &Path, speed: f64) -> ExitCode {
     let config = match config::load(path) {
         Ok(c) => c,
         Err(problems) => return report_problems(&problems),
     };
     init_logging(config.service.log_format, "info");
     block_on(async move {
-        let app = crate::app::App::build(&config, &crate::app::Options::default()).await?;
+        let options = crate::app::Options { speed, ..crate::app::Options::default() };
+        let app = crate::app::App::build(&config, &options).await?;
         tracing::info!(
             config = %path.display(),
             api = %app.local_addr()?,
