@@ -12,17 +12,18 @@ use ridgeline::app::{App, Options};
 use tokio_util::sync::CancellationToken;
 
 mod scale;
-use scale::{LOOPS_PER_PLC, config_text, percentile, start_plcs};
+use scale::{Layout, percentile, start_plcs};
 
 fn main() -> anyhow::Result<()> {
     let numbers: Vec<u64> = std::env::args().skip(1).filter_map(|a| a.parse().ok()).collect();
     let loops = numbers.first().copied().unwrap_or(100) as usize;
     let rps = numbers.get(1).copied().unwrap_or(1000);
     let seconds = numbers.get(2).copied().unwrap_or(20);
-    let plcs = loops.div_ceil(LOOPS_PER_PLC);
+    let layout = Layout::default();
+    let plcs = loops.div_ceil(layout.loops_per_plc);
 
     let stop = CancellationToken::new();
-    let (_sims, ports) = start_plcs(plcs, &stop)?;
+    let (_sims, ports) = start_plcs(&layout, plcs, &stop)?;
 
     let service = tokio::runtime::Builder::new_multi_thread()
         .worker_threads(2)
@@ -30,8 +31,8 @@ fn main() -> anyhow::Result<()> {
         .enable_all()
         .build()?;
     let dir = tempfile::tempdir()?;
-    let mut config =
-        ridgeline::config::parse(&config_text(&ports), "bench-config").map_err(|p| anyhow::anyhow!("{p}"))?;
+    let mut config = ridgeline::config::parse(&layout.config_text(&ports), "bench-config")
+        .map_err(|p| anyhow::anyhow!("{p}"))?;
     config.loops.truncate(loops);
     let options = Options {
         database: Some(dir.path().join("history.db")),

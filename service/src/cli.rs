@@ -435,6 +435,7 @@ fn serve(path: &Path, speed: f64) -> ExitCode {
         Err(problems) => return report_problems(&problems),
     };
     init_logging(config.service.log_format, "info");
+    crate::open_files::raise_for(config.links.len());
     block_on(async move {
         let options = crate::app::Options { speed, ..crate::app::Options::default() };
         let app = crate::app::App::build(&config, &options).await?;

@@ -21,6 +21,7 @@
 //! - [`supervisor`]: the live loops: one task per loop on its tick, and the pure
 //!   per-tick decisions (`control`) that the rehearsal shares.
 //! - [`metrics`]: the Prometheus registry; every known series exists from the start.
+//! - [`open_files`]: the open-file limit, raised at start to what the system allows.
 //! - [`report`]: where metrics and history events go, shared by links and loops.
 //! - [`rehearse`]: offline runs of configured loops against a plant model, scored
 //!   against the true optimum, with report, CSV and SVG plot.
@@ -36,6 +37,7 @@ pub mod expr;
 pub mod field;
 pub mod history;
 pub mod metrics;
+pub mod open_files;
 pub mod rehearse;
 pub mod report;
 pub mod seek;

@@ -31,11 +31,12 @@ impl Links {
     /// Handles on every link of a validated config; nothing connects yet.
     pub fn new(config: &Config, reporting: &Reporting) -> Result<Self, LinkError> {
         let mut links = Links::default();
+        let caps = backoff_caps(config);
         for link in &config.links {
             let timeout = Duration::from_millis(link.timeout_ms);
             match &link.kind {
                 LinkKind::ModbusTcp { address, unit } => {
-                    let cap = backoff_cap(config, &link.name);
+                    let cap = caps.get(link.name.as_str()).copied().unwrap_or(modbus::BACKOFF_CAP);
                     let m =
                         ModbusLink::reporting_to(&link.name, address, *unit, timeout, cap, reporting.clone());
                     links.modbus.insert(link.name.clone(), m);
@@ -55,15 +56,22 @@ impl Links {
 
 /// A link's reconnection backoff is capped at half the shortest tick of the loops that
 /// use it, so a loop retries its link (and its fallback write) on every tick, not every
-/// other one when a tick comes a little before the backoff ends.
-fn backoff_cap(config: &Config, link: &str) -> Duration {
-    let uses = |l: &crate::config::LoopConfig| {
-        l.objective.names().iter().chain(&l.permit).any(|t| config.tag(t).is_some_and(|t| t.link == link))
-            || l.inputs.iter().any(|i| i.write.link == link)
-            || l.heartbeat.as_ref().is_some_and(|h| h.link == link)
-    };
-    let fastest = config.loops.iter().filter(|l| uses(l)).map(|l| l.tick_s).fold(f64::INFINITY, f64::min);
-    if fastest.is_finite() { Duration::from_secs_f64(fastest / 2.0) } else { modbus::BACKOFF_CAP }
+/// other one when a tick comes a little before the backoff ends. Links no loop uses are
+/// absent. One pass over the loops, so thousands of links start as fast as a few.
+fn backoff_caps(config: &Config) -> HashMap<&str, Duration> {
+    let tag_links: HashMap<&str, &str> =
+        config.tags.iter().map(|t| (t.name.as_str(), t.link.as_str())).collect();
+    let mut fastest: HashMap<&str, f64> = HashMap::new();
+    for l in &config.loops {
+        let reads =
+            l.objective.names().iter().chain(&l.permit).filter_map(|t| tag_links.get(t.as_str()).copied());
+        let writes = l.inputs.iter().map(|i| i.write.link.as_str());
+        for link in reads.chain(writes).chain(l.heartbeat.as_ref().map(|h| h.link.as_str())) {
+            let tick = fastest.entry(link).or_insert(f64::INFINITY);
+            *tick = tick.min(l.tick_s);
+        }
+    }
+    fastest.into_iter().map(|(link, tick)| (link, Duration::from_secs_f64(tick / 2.0))).collect()
 }
 
 /// One value to read from registers, and where its value goes.

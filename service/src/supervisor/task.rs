@@ -131,6 +131,9 @@ pub struct LoopTask {
     objective_at: Option<i64>,
     last_tick: Option<u64>,
     skipped_ticks: u64,
+    /// Where in the tick period this loop ticks, as a fraction (see [`OnTick::phase`]):
+    /// its place among the configured loops, so they are spread evenly.
+    phase: f64,
     heartbeat: u16,
     /// The heartbeat value last written successfully, which the register should still
     /// hold at the next tick.
@@ -183,6 +186,7 @@ impl LoopTask {
             objective_at: None,
             last_tick: None,
             skipped_ticks: 0,
+            phase: index as f64 / config.loops.len().max(1) as f64,
             heartbeat: 0,
             heartbeat_written: None,
             heartbeat_conflict: false,
@@ -960,13 +964,27 @@ pub trait OnTick {
     /// Waits for the next command; must be cancel-safe (it races the clock).
     fn next_command(&mut self) -> impl Future<Output = Self::Command> + Send;
     fn on_command(&mut self, command: Self::Command) -> impl Future<Output = ()> + Send;
+    /// Where the ticks fall, as a fraction of the period (of at most [`PHASE_SPREAD`]);
+    /// 0 is at once.
+    fn phase(&self) -> f64 {
+        0.0
+    }
 }
+
+/// Loops start spread over at most this much of their period, so ten thousand loops on
+/// one tick wake ten to a millisecond, not all at once; and a slow loop's first tick
+/// comes within a second of the start.
+pub const PHASE_SPREAD: Duration = Duration::from_secs(1);
 
 impl OnTick for LoopTask {
     type Command = Command;
 
     async fn on_tick(&mut self, n: u64) {
         self.tick(n).await;
+    }
+
+    fn phase(&self) -> f64 {
+        self.phase
     }
 
     async fn next_command(&mut self) -> Command {
@@ -1005,14 +1023,15 @@ pub async fn run(mut task: LoopTask, period: Duration, cancel: CancellationToken
 /// as they come between ticks. A tick more than half a period late (after a stall) is
 /// skipped, never queued up: the index follows the wall clock, so the dither stays in
 /// phase with time, and the gap in the indices counts the skipped ticks. `observe`
-/// hears the lateness of each tick that runs.
+/// hears the lateness of each tick that runs. The first tick comes `work.phase()` of the
+/// period (of at most [`PHASE_SPREAD`]) after the call.
 pub async fn schedule<W: OnTick>(
     period: Duration,
     cancel: &CancellationToken,
     mut observe: impl FnMut(Duration),
     work: &mut W,
 ) {
-    let start = Instant::now();
+    let start = Instant::now() + period.min(PHASE_SPREAD).mul_f64(work.phase().clamp(0.0, 1.0));
     let mut interval = tokio::time::interval_at(start, period);
     interval.set_missed_tick_behavior(MissedTickBehavior::Skip);
     loop {
@@ -1077,5 +1096,45 @@ mod tests {
         assert_eq!(r.seen, vec![0, 1, 2, 3, 6, 7, 8]);
         // Every tick that ran started on time; the stalled ones were skipped, not late.
         assert!(late.iter().all(|d| *d < Duration::from_millis(1)), "{late:?}");
+    }
+
+    /// Records when each tick comes, from its phase, and stops after three.
+    struct Phased {
+        phase: f64,
+        started: Instant,
+        at: Vec<Duration>,
+        cancel: CancellationToken,
+    }
+
+    impl OnTick for Phased {
+        type Command = ();
+
+        async fn next_command(&mut self) {
+            std::future::pending().await
+        }
+
+        async fn on_command(&mut self, (): ()) {}
+
+        fn phase(&self) -> f64 {
+            self.phase
+        }
+
+        async fn on_tick(&mut self, _n: u64) {
+            self.at.push(self.started.elapsed());
+            if self.at.len() == 3 {
+                self.cancel.cancel();
+            }
+        }
+    }
+
+    #[tokio::test(start_paused = true)]
+    async fn a_phase_puts_the_ticks_that_share_of_the_period_later_up_to_a_second() {
+        for (period, phase, first) in [(500, 0.5, 250), (2000, 0.25, 250), (10_000, 0.5, 500)] {
+            let (period, first) = (Duration::from_millis(period), Duration::from_millis(first));
+            let cancel = CancellationToken::new();
+            let mut p = Phased { phase, started: Instant::now(), at: Vec::new(), cancel: cancel.clone() };
+            schedule(period, &cancel, |_| {}, &mut p).await;
+            assert_eq!(p.at, vec![first, first + period, first + 2 * period]);
+        }
     }
 }
