@@ -30,6 +30,16 @@ enabled = false
 include-path-regex = "/(bounds|bump-test)$"
 [operations.checks.positive_data_acceptance]
 expected-statuses = ["2xx", "3xx", "401", "403", "404", "409", "422", "429", "5xx"]
+
+# The samples' `format` and `limit` are one object parameter with a branch per format.
+# For a negative case schemathesis may break `format` in a way its query serialization
+# then drops, and sends a valid request (seen: `?limit=254`, answered 200 as it should).
+# The limits themselves are still checked by positive_data_acceptance and the
+# handlers' own tests.
+[[operations]]
+include-path-regex = "/samples$"
+[operations.checks.negative_data_rejection]
+enabled = false
 "#;
 
 /// With an operator token every operation must be reached with data the service takes:
